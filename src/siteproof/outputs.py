@@ -1,0 +1,93 @@
+"""Writing results safely: atomic files and output folders that never hold a half-finished run.
+
+Every writer goes through :func:`atomic_write_bytes` / :func:`atomic_write_text` (write to a temporary file
+in the same folder, then ``os.replace``), so an interrupted or failed run leaves either the old file or the
+new one, never a partial file.  :func:`prepare_out_dir` refuses a folder that already holds siteproof
+results unless ``force`` is set.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .errors import SiteproofError
+
+RESULT_FILES = ("claims.json", "scorecard.json", "report.html", "report.md", "units.parquet")
+
+
+def atomic_write_bytes(path: Path | str, data: bytes) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def atomic_write_text(path: Path | str, text: str) -> Path:
+    """UTF-8 text version of :func:`atomic_write_bytes`."""
+    return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def _json_default(obj: Any) -> Any:
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return None if not np.isfinite(obj) else float(obj)
+    if isinstance(obj, np.ndarray):
+        return [_json_default(v) if isinstance(v, np.generic) else v for v in obj.tolist()]
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"cannot serialise {type(obj).__name__} to JSON")
+
+
+def _finite(obj: Any) -> Any:
+    """Replace non-finite floats by None so that the JSON is standard (no NaN/Infinity tokens)."""
+    if isinstance(obj, float):
+        return obj if np.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite(v) for v in obj]
+    return obj
+
+
+def to_json_text(obj: Any) -> str:
+    """Standard JSON (NaN → null, numpy scalars → numbers), indented for people to read."""
+    plain = json.loads(json.dumps(obj, default=_json_default, allow_nan=True))
+    return json.dumps(_finite(plain), indent=2, allow_nan=False) + "\n"
+
+
+def atomic_write_json(path: Path | str, obj: Any) -> Path:
+    """Write ``obj`` as standard JSON atomically."""
+    return atomic_write_text(path, to_json_text(obj))
+
+
+def prepare_out_dir(out_dir: Path | str, force: bool = False) -> Path:
+    """Create ``out_dir`` or check that it holds no earlier siteproof results (unless ``force``)."""
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise SiteproofError(f"output path {out} is a file, not a folder", "name a folder with --out")
+    if out.is_dir() and not force:
+        earlier = [name for name in RESULT_FILES if (out / name).exists()]
+        if earlier:
+            raise SiteproofError(
+                f"output folder {out} already holds earlier results ({', '.join(earlier)})",
+                "choose another --out folder or add --force to overwrite them",
+            )
+    out.mkdir(parents=True, exist_ok=True)
+    return out
