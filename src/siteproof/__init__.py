@@ -7,7 +7,8 @@ The public Python API mirrors the command line: intake (:func:`load_study`), the
 
 from .errors import SiteproofError, SiteproofWarning
 from .estimates import Estimate
+from .heterogeneity import RandomEffectsResult, random_effects
 
 __version__ = "0.1.0"
 
-__all__ = ["Estimate", "SiteproofError", "SiteproofWarning", "__version__"]
+__all__ = ["Estimate", "RandomEffectsResult", "SiteproofError", "SiteproofWarning", "__version__", "random_effects"]

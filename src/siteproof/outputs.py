@@ -2,7 +2,7 @@
 
 Every writer goes through :func:`atomic_write_bytes` / :func:`atomic_write_text` (write to a temporary file
 in the same folder, then ``os.replace``), so an interrupted or failed run leaves either the old file or the
-new one, never a partial file.  :func:`prepare_out_dir` refuses a folder that already holds siteproof
+new one, never a partial file.  :func:`check_out_dir` refuses a folder that already holds siteproof
 results unless ``force`` is set.
 """
 
@@ -77,8 +77,8 @@ def atomic_write_json(path: Path | str, obj: Any) -> Path:
     return atomic_write_text(path, to_json_text(obj))
 
 
-def prepare_out_dir(out_dir: Path | str, force: bool = False) -> Path:
-    """Create ``out_dir`` or check that it holds no earlier siteproof results (unless ``force``)."""
+def check_out_dir(out_dir: Path | str, force: bool = False) -> Path:
+    """Refuse an output path that is a file, or a folder holding earlier siteproof results (unless ``force``)."""
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise SiteproofError(f"output path {out} is a file, not a folder", "name a folder with --out")
@@ -89,5 +89,49 @@ def prepare_out_dir(out_dir: Path | str, force: bool = False) -> Path:
                 f"output folder {out} already holds earlier results ({', '.join(earlier)})",
                 "choose another --out folder or add --force to overwrite them",
             )
-    out.mkdir(parents=True, exist_ok=True)
     return out
+
+
+class StagedOutput:
+    """A scratch folder beside ``out_dir`` whose files are moved into ``out_dir`` only when all succeeded.
+
+    Used as a context manager: write every output into ``.path``; on a clean exit each file is renamed into
+    the final folder (``os.replace``, atomic per file); on an error the scratch folder is removed and the final
+    folder is left as it was — no partial outputs.
+    """
+
+    def __init__(self, out_dir: Path | str, force: bool = False) -> None:
+        self.out_dir = Path(out_dir)
+        self.force = force
+        self.path: Path | None = None
+
+    def __enter__(self) -> Path:
+        check_out_dir(self.out_dir, self.force)
+        parent = self.out_dir.resolve().parent
+        parent.mkdir(parents=True, exist_ok=True)
+        self.path = Path(tempfile.mkdtemp(prefix=f".{self.out_dir.name}.", suffix=".partial", dir=parent))
+        return self.path
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        assert self.path is not None
+        try:
+            if exc_type is None:
+                self._publish(self.path)
+        finally:
+            _remove_tree(self.path)
+
+    def _publish(self, staged: Path) -> None:
+        self.out_dir.mkdir(parents=True, exist_ok=True)
+        for src in sorted(staged.rglob("*")):
+            if src.is_file():
+                dest = self.out_dir / src.relative_to(staged)
+                dest.parent.mkdir(parents=True, exist_ok=True)
+                os.replace(src, dest)
+
+
+def _remove_tree(path: Path) -> None:
+    if not path.exists():
+        return
+    for child in sorted(path.rglob("*"), reverse=True):
+        child.rmdir() if child.is_dir() else child.unlink()
+    path.rmdir()

@@ -1,0 +1,300 @@
+"""The blind analysis: what a careful observational analyst concludes without ever seeing the site labels.
+
+:func:`run_blind` takes a :class:`~siteproof.study.BlindData` (which has no site field, so blindness holds by
+construction) and runs, in order:
+
+1. K-fold cross-fitting of the nuisances ê(x), μ̂₀(x), μ̂₁(x), m̂(x) (``nuisance``);
+2. overlap and balance diagnostics and the average-effect estimators, each with per-unit scores (``average``);
+3. the CATE models, out-of-fold (``effects``), and their evaluation with the blind AIPW scores (``evaluation``);
+4. the learned treatment rules and their doubly robust values (``rules``).
+
+Every figure is recorded as a claim with SE and 95 % CI in a :class:`Claims` object; per-unit quantities go to
+the sidecar table that the unmask step re-scores with the known rates.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .average import (
+    aipw,
+    balance_table,
+    covariate_auc_warnings,
+    ipw_hajek,
+    naive,
+    overlap_summary,
+    overlap_weighted,
+    regression_adjusted,
+)
+from .effects import CATE_KEYS, CateFit, fit_cate
+from .errors import SiteproofError
+from .evaluation import blp, cost_curve, gates, r_loss_comparison, rank_metric
+from .nuisance import Nuisances, cross_fit_nuisances, make_folds
+from .rules import PolicyTree, budget_rule, cross_fitted_tree, rule_value, threshold_rule
+from .scores import arm_scores
+from .study import BlindData
+
+CLAIMS_SCHEMA = "siteproof/claims"
+CLAIMS_VERSION = 1
+ATE_ESTIMATORS = ("naive", "regression", "ipw", "aipw", "overlap")
+
+
+@dataclass(frozen=True)
+class BlindConfig:
+    """Settings of the blind analysis (every random step is driven by ``seed``)."""
+
+    folds: int = 5
+    seed: int = 2026
+    clip: tuple[float, float] = (0.01, 0.99)
+    models: tuple[str, ...] = CATE_KEYS
+    gates_groups: int = 5
+    n_boot: int = 200
+    budgets: tuple[float, ...] = (0.1, 0.2, 0.3, 0.4, 0.5)
+    tree: bool = True
+    tree_bins: int = 32
+    nuisance_learners: dict[str, Any] | None = field(default=None, compare=False)
+    cate_learner: Any = field(default=None, compare=False)
+
+    def validate(self) -> None:
+        """Raise :class:`SiteproofError` for settings that cannot work."""
+        unknown = [m for m in self.models if m not in CATE_KEYS]
+        if unknown:
+            raise SiteproofError(
+                f"unknown effect model(s) {', '.join(unknown)}", f"choose among {', '.join(CATE_KEYS)}"
+            )
+        if "constant" not in self.models:
+            raise SiteproofError(
+                "the constant-effect model is missing from the model list",
+                "keep 'constant': every R-loss comparison is made against it",
+            )
+        lo, hi = self.clip
+        if not 0 <= lo < 0.5 < hi <= 1:
+            raise SiteproofError(f"clipping bounds {self.clip} are not 0 ≤ low < 0.5 < high ≤ 1", "use e.g. 0.01,0.99")
+        if any(not 0 < q < 1 for q in self.budgets):
+            raise SiteproofError("budget shares must lie strictly between 0 and 1", "use e.g. 0.1,0.2,0.3")
+        if self.gates_groups < 2:
+            raise SiteproofError("GATES needs at least 2 groups", "set gates_groups ≥ 2")
+        if self.n_boot < 20:
+            raise SiteproofError("too few bootstrap draws for an SE", "use n_boot ≥ 20 (default 200)")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready settings (learner objects are described by their class names)."""
+        return {
+            "folds": self.folds,
+            "seed": self.seed,
+            "clip": list(self.clip),
+            "models": list(self.models),
+            "gates_groups": self.gates_groups,
+            "n_boot": self.n_boot,
+            "budgets": list(self.budgets),
+            "tree": self.tree,
+            "tree_bins": self.tree_bins,
+            "nuisance_learners": "default" if self.nuisance_learners is None else "user-supplied",
+            "cate_learner": "default" if self.cate_learner is None else type(self.cate_learner).__name__,
+        }
+
+
+@dataclass
+class Claims:
+    """Everything the blind analysis asserts, plus the fitted objects needed to transport it to new units."""
+
+    record: dict[str, Any]
+    units: pd.DataFrame
+    cate_fits: dict[str, CateFit] = field(repr=False)
+    tree: PolicyTree | None = field(default=None, repr=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The content of ``claims.json``."""
+        return self.record
+
+
+def _timed(timings: dict[str, float], key: str, start: float) -> float:
+    now = time.perf_counter()
+    timings[key] = timings.get(key, 0.0) + now - start
+    return now
+
+
+def _ate_claims(data: BlindData, nuis: Nuisances) -> list:
+    """The five average-effect estimators of issue 3 item 4, each an Estimate with per-unit scores."""
+    y, w, e = data.y, data.w, nuis.e_hat
+    return [
+        naive(y, w),
+        regression_adjusted(data.X, y, w),
+        ipw_hajek(y, w, e),
+        aipw(y, w, e, nuis.mu0, nuis.mu1),
+        overlap_weighted(y, w, e),
+    ]
+
+
+def _tau_summary(tau: np.ndarray) -> dict[str, float]:
+    q = np.quantile(tau, [0.1, 0.5, 0.9])
+    return {"mean": float(tau.mean()), "sd": float(tau.std(ddof=1)), "q10": float(q[0]), "q50": float(q[1]), "q90": float(q[2])}
+
+
+def _evaluate_model(
+    key: str, tau: np.ndarray, tau_const: np.ndarray, data: BlindData, nuis: Nuisances,
+    gamma: np.ndarray, config: BlindConfig,
+) -> dict[str, Any]:
+    """All evaluation figures of one CATE model, with the blind AIPW scores (issue 3 item 6)."""
+    y, w, e = data.y, data.w, nuis.e_hat
+    out: dict[str, Any] = {"model": key, "tau_summary": _tau_summary(tau)}
+    out["r_loss"] = r_loss_comparison(y, w, e, nuis.m_hat, tau, tau_const).to_dict()
+    if key == "constant":
+        return out
+    out["gates"] = gates(tau, gamma, k=config.gates_groups).to_dict()
+    out["high_low"] = gates(tau, gamma, k=2).to_dict()
+    out["blp"] = blp(y, w, e, tau, nuis.mu0).to_dict()
+    for kind in ("autoc", "qini"):
+        out[kind] = rank_metric(tau, gamma, kind=kind, n_boot=config.n_boot, seed=config.seed).to_dict()
+    if data.cost is not None:
+        out["cost_curve"] = cost_curve(tau, gamma, data.cost).to_dict()
+    return out
+
+
+def _rule_claims(
+    data: BlindData, nuis: Nuisances, fits: dict[str, CateFit], config: BlindConfig,
+) -> tuple[list[dict[str, Any]], dict[str, np.ndarray], PolicyTree | None]:
+    """Threshold, budget and depth-2 tree rules with their doubly robust values (issue 3 item 7)."""
+    gamma0, gamma1 = arm_scores(data.y, data.w, nuis.e_hat, nuis.mu0, nuis.mu1)
+    records: list[dict[str, Any]] = []
+    assignments: dict[str, np.ndarray] = {}
+
+    def add(name: str, model: str | None, kind: str, budget: float | None, pi: np.ndarray, text: str = "") -> None:
+        value = rule_value(pi, gamma0, gamma1, data.cost)
+        rec = {"rule": name, "model": model, "kind": kind, "budget": budget, **value.to_dict()}
+        if text:
+            rec["tree_text"] = text
+        records.append(rec)
+        assignments[name] = pi
+
+    for key, fit in fits.items():
+        if key == "constant":
+            continue
+        add(f"{key}.threshold", key, "threshold", None, threshold_rule(fit.tau, data.cost))
+        for q in config.budgets:
+            add(f"{key}.top{round(q * 100)}", key, "budget", q, budget_rule(fit.tau, q))
+    tree = None
+    if config.tree:
+        pi_tree, tree, _ = cross_fitted_tree(
+            data.X, gamma0, gamma1, nuis.folds, data.feature_names, cost=data.cost, max_bins=config.tree_bins
+        )
+        add("tree", None, "tree", None, pi_tree, tree.to_text())
+    return records, assignments, tree
+
+
+def _units_table(
+    data: BlindData, nuis: Nuisances, ates: list, fits: dict[str, CateFit], rules: dict[str, np.ndarray]
+) -> pd.DataFrame:
+    """The per-unit sidecar (docs/claims-format.md)."""
+    cols: dict[str, Any] = {
+        "row_key": data.row_key.astype(str),
+        "fold": nuis.folds.astype(np.int16),
+        "e_hat": nuis.e_hat,
+        "e_raw": nuis.e_raw,
+        "mu0": nuis.mu0,
+        "mu1": nuis.mu1,
+        "m_hat": nuis.m_hat,
+    }
+    cols.update({f"score_{est.name}": est.scores for est in ates})
+    cols.update({f"tau_{key}": fit.tau for key, fit in fits.items()})
+    cols.update({f"rule_{name}": pi.astype(np.int8) for name, pi in rules.items()})
+    return pd.DataFrame(cols)
+
+
+def _data_record(data: BlindData) -> dict[str, Any]:
+    return {
+        "n": int(data.y.size),
+        "outcome": data.outcome,
+        "treatment": data.treatment,
+        "treated_value": data.treated_value,
+        "covariates": list(data.covariates),
+        "features": list(data.feature_names),
+        "binary_outcome": bool(data.binary_outcome),
+        "excluded": dict(data.n_excluded),
+        "outcome_sd": float(data.outcome_sd()),
+        "has_cost": data.cost is not None,
+        "n_treated": int(data.w.sum()),
+    }
+
+
+def run_blind(
+    data: BlindData, config: BlindConfig | None = None, progress: Callable[[str], None] | None = None
+) -> Claims:
+    """Run the whole blind analysis on ``data`` and return its claims.
+
+    ``progress`` is called with a short label after each model fit (see :func:`count_fits` for the total).
+    """
+    config = config or BlindConfig()
+    config.validate()
+    tick = progress or (lambda label="": None)
+    timings: dict[str, float] = {}
+    t0 = start = time.perf_counter()
+
+    folds = make_folds(data.w, config.folds, config.seed)
+    nuis = cross_fit_nuisances(
+        data.X, data.y, data.w, folds, binary_outcome=data.binary_outcome,
+        learners=config.nuisance_learners, clip=config.clip, seed=config.seed, progress=tick,
+    )
+    start = _timed(timings, "nuisances", start)
+
+    ates = _ate_claims(data, nuis)
+    overlap = overlap_summary(nuis.e_raw, data.w, config.clip)
+    balance = balance_table(data.X, data.w, nuis.e_hat, data.feature_names)
+    auc_flags = covariate_auc_warnings(data.X, data.w, folds, data.feature_names)
+    start = _timed(timings, "average", start)
+
+    fits = {
+        key: fit_cate(
+            key, data.X, data.y, data.w, e_hat=nuis.e_hat, mu0=nuis.mu0, mu1=nuis.mu1, m_hat=nuis.m_hat,
+            folds=folds, binary_outcome=data.binary_outcome, learner=config.cate_learner, seed=config.seed,
+            progress=tick,
+        )
+        for key in config.models
+    }
+    start = _timed(timings, "effects", start)
+
+    gamma = ates[ATE_ESTIMATORS.index("aipw")].scores
+    tau_const = fits["constant"].tau
+    cate = [_evaluate_model(k, f.tau, tau_const, data, nuis, gamma, config) for k, f in fits.items()]
+    start = _timed(timings, "evaluation", start)
+
+    rule_records, assignments, tree = _rule_claims(data, nuis, fits, config)
+    start = _timed(timings, "rules", start)
+
+    warnings = [
+        f"covariate {name} alone predicts treatment with out-of-fold AUC {auc:.2f} > 0.9: "
+        "a likely post-treatment or design variable" for name, auc in auc_flags
+    ]
+    timings["total"] = time.perf_counter() - t0
+    record = {
+        "schema": CLAIMS_SCHEMA,
+        "version": CLAIMS_VERSION,
+        "siteproof_version": __version__,
+        "fingerprint": data.fingerprint,
+        "settings": config.to_dict(),
+        "data": _data_record(data),
+        "nuisance": nuis.to_dict(),
+        "overlap": overlap,
+        "balance": balance.to_dict(orient="records"),
+        "warnings": warnings,
+        "ate": [{"estimator": est.name, **est.to_dict()} for est in ates],
+        "cate": cate,
+        "rules": rule_records,
+        "timings": {k: round(v, 3) for k, v in timings.items()},
+    }
+    units = _units_table(data, nuis, ates, fits, assignments)
+    return Claims(record=record, units=units, cate_fits=fits, tree=tree)
+
+
+def count_fits(config: BlindConfig, n_candidates: int = 2) -> int:
+    """Approximate number of model fits (progress-bar total): nuisances × candidates × folds + CATE stages."""
+    per_model = {"constant": 0, "t": 0, "s": 1, "x": 2, "r": 1, "dr": 1}
+    nuisance_fits = 4 * n_candidates * config.folds
+    return nuisance_fits + config.folds * sum(per_model.get(m, 1) for m in config.models)
+

@@ -1,0 +1,336 @@
+"""The ``siteproof`` command line: a thin typer shell over the Python API.
+
+Every verb parses flags, calls one API function and prints its result. User mistakes surface as a single
+line ``error: <what> — <how to fix>`` on stderr with exit status 2 and no traceback; outputs are published
+only when the whole command succeeded.
+"""
+
+from __future__ import annotations
+
+import functools
+import inspect
+import sys
+import typing
+import warnings
+from dataclasses import dataclass, fields
+from pathlib import Path
+from typing import Annotated, Any, Callable, Optional
+
+import click
+import typer
+
+from .errors import SiteproofError, SiteproofWarning
+
+app = typer.Typer(
+    name="siteproof",
+    help="Blind observational analysis of pooled multi-site trials, scored against each site's randomization.",
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+    rich_markup_mode=None,
+)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# data flags shared by run, blind, unmask and seal
+# ---------------------------------------------------------------------------------------------------------
+@dataclass
+class DataFlags:
+    """The data flags of issue 2 item 5; ``--study FILE.toml`` is the equivalent study file."""
+
+    data: Optional[Path] = None
+    study: Optional[Path] = None
+    outcome: Optional[str] = None
+    treatment: Optional[str] = None
+    site: Optional[str] = None
+    treated_value: Optional[str] = None
+    covariates: Optional[str] = None
+    id: Optional[str] = None
+    cost: Optional[str] = None
+    stratum: Optional[str] = None
+    rates: Optional[str] = None
+    margin: Optional[float] = None
+    seed: Optional[int] = None
+    encoding: Optional[str] = None
+    keep_column: Optional[list[str]] = None
+    drop_column: Optional[list[str]] = None
+    site_derived: Optional[list[str]] = None
+
+    def to_spec(self):
+        """Build the :class:`~siteproof.study.StudySpec` from a study file and/or flags (flags win)."""
+        from .study import StudySpec, load_spec_toml, parse_rates
+
+        given = {
+            "data": self.data, "outcome": self.outcome, "treatment": self.treatment, "site": self.site,
+            "treated_value": self.treated_value, "id": self.id, "cost": self.cost, "stratum": self.stratum,
+            "margin": self.margin, "seed": self.seed, "encoding": self.encoding,
+            "covariates": _split(self.covariates), "rates": parse_rates(self.rates) if self.rates else None,
+            "keep_columns": self.keep_column or None, "drop_columns": self.drop_column or None,
+            "site_derived": self.site_derived or None,
+        }
+        given = {key: value for key, value in given.items() if value is not None}
+        if self.study is not None:
+            return load_spec_toml(self.study, overrides=given)
+        for key, flag in (("data", "DATA"), ("outcome", "--outcome"), ("treatment", "--treatment"), ("site", "--site")):
+            if key not in given:
+                raise SiteproofError(
+                    f"{flag} is missing", f"give {flag} (see `siteproof run --help`) or describe the study with --study FILE.toml"
+                )
+        return StudySpec(**given)
+
+
+_DATA_HELP = {
+    "study": "Study file (TOML) naming the data and column roles; flags override its keys.",
+    "outcome": "Outcome column (numeric; 0/1 allowed).",
+    "treatment": "Treatment column (exactly two values).",
+    "site": "Site column (hidden from the blind analysis).",
+    "treated_value": "Which treatment value means treated (0/1 and true/false are inferred).",
+    "covariates": "Comma-separated covariate columns (default: every other column).",
+    "id": "Unit id column.",
+    "cost": "Per-unit cost of treating.",
+    "stratum": "Randomization stratum within site.",
+    "rates": "Known assignment probabilities, e.g. A=0.5,B=0.8 (or SITE:STRATUM=P).",
+    "margin": "Equivalence margin δ (default 0.1 × SD of the outcome).",
+    "seed": "Seed for every random step (same seed, same output).",
+    "encoding": "Text encoding of a CSV that is not UTF-8, e.g. latin-1.",
+    "keep_column": "Keep a covariate that resembles the site (repeatable).",
+    "drop_column": "Drop a column before analysis (repeatable).",
+    "site_derived": "Mark a column as derived from the site: never seen blind (repeatable).",
+}
+
+
+def _data_parameters() -> list[inspect.Parameter]:
+    hints = typing.get_type_hints(DataFlags)
+    params = [
+        inspect.Parameter(
+            "data", inspect.Parameter.POSITIONAL_OR_KEYWORD, default=None,
+            annotation=Annotated[Optional[Path], typer.Argument(help="Pooled data, CSV or Parquet.", show_default=False)],
+        )
+    ]
+    for f in fields(DataFlags):
+        if f.name == "data":
+            continue
+        flag = "--" + f.name.replace("_", "-")
+        params.append(
+            inspect.Parameter(
+                f.name, inspect.Parameter.KEYWORD_ONLY, default=None,
+                annotation=Annotated[hints[f.name], typer.Option(flag, help=_DATA_HELP[f.name], show_default=False)],
+            )
+        )
+    return params
+
+
+def with_data_flags(func: Callable[..., Any]) -> Callable[..., Any]:
+    """Give a command the shared data flags; the command receives them packed as ``flags: DataFlags``."""
+    own = [p for p in inspect.signature(func).parameters.values() if p.name != "flags"]
+    data_params = _data_parameters()
+    names = {p.name for p in data_params}
+
+    @functools.wraps(func)
+    def wrapper(**kwargs: Any) -> Any:
+        flags = DataFlags(**{name: kwargs.pop(name) for name in names})
+        return func(flags=flags, **kwargs)
+
+    positional = [p for p in own if p.kind == inspect.Parameter.POSITIONAL_OR_KEYWORD]
+    keyword = [p.replace(kind=inspect.Parameter.KEYWORD_ONLY) for p in own if p not in positional]
+    wrapper.__signature__ = inspect.Signature(data_params[:1] + positional + keyword + data_params[1:])  # type: ignore[attr-defined]
+    wrapper.__annotations__ = {p.name: p.annotation for p in wrapper.__signature__.parameters.values()}  # type: ignore[attr-defined]
+    return wrapper
+
+
+def _split(text: Optional[str]) -> Optional[list[str]]:
+    return [part.strip() for part in text.split(",") if part.strip()] if text else None
+
+
+# ---------------------------------------------------------------------------------------------------------
+# options shared by several verbs
+# ---------------------------------------------------------------------------------------------------------
+OutOpt = Annotated[Path, typer.Option("--out", help="Output folder.")]
+ForceOpt = Annotated[bool, typer.Option("--force", help="Overwrite earlier results in the output folder.")]
+FoldsOpt = Annotated[int, typer.Option("--folds", help="Cross-fitting folds K.")]
+ModelsOpt = Annotated[str, typer.Option("--models", help="Effect models by key: constant,s,t,x,r,dr.")]
+TransportOpt = Annotated[bool, typer.Option("--transport", help="Also run leave-one-site-out transport.")]
+WorkersOpt = Annotated[int, typer.Option("--workers", help="Local processes for transport.")]
+FailOnOpt = Annotated[Optional[str], typer.Option("--fail-on", help="Exit 1 when any claim gets this verdict ('different').")]
+
+
+def _blind_config(seed: int, folds: int, models: str):
+    from .blind import BlindConfig
+
+    return BlindConfig(seed=seed, folds=folds, models=tuple(_split(models) or ()))
+
+
+def _fit_progress(config):
+    from .blind import count_fits
+    from .console import progress_bar
+
+    return progress_bar("fitting models", count_fits(config))
+
+
+def _print_scorecard(scorecard, out_dir: Path) -> None:
+    from .console import console
+    from .unmask import summary_renderables
+
+    for item in summary_renderables(scorecard):
+        console.print(item)
+    console.print(f"\nscorecard: {out_dir / 'scorecard.json'}")
+    if (out_dir / "report.html").exists():
+        console.print(f"report:    {out_dir / 'report.html'}")
+
+
+def _exit_for(scorecard, fail_on: Optional[str]) -> None:
+    from .unmask import any_different
+
+    if fail_on is None:
+        return
+    if fail_on != "different":
+        raise SiteproofError(f"--fail-on {fail_on} is not supported", "use --fail-on different")
+    if any_different(scorecard):
+        raise typer.Exit(1)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# verbs
+# ---------------------------------------------------------------------------------------------------------
+@app.command()
+def demo(
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("siteproof-demo"),
+    force: ForceOpt = False,
+) -> None:
+    """Run the whole job on the shipped library-coaching demo and on its hidden-branch-effect variant."""
+    from .blind import BlindConfig
+    from .console import console
+    from .pipeline import DEMO_SEED, run_demo
+
+    config = BlindConfig(seed=DEMO_SEED)
+    with _fit_progress(config) as tick:
+        results = run_demo(out, config, force=force, progress=tick)
+    for result in results:
+        console.rule(f"[bold]{result.study.spec.name}")
+        _print_scorecard(result.scorecard, result.out_dir)
+
+
+@app.command()
+def simulate(
+    design: Annotated[str, typer.Argument(help="A shipped design name or a design TOML file.")],
+    out: Annotated[Path, typer.Option("--out", help="Data file to write (.csv or .parquet).")],
+    n: Annotated[Optional[int], typer.Option("--n", help="Number of units (default: the design's).")] = None,
+    seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 0,
+    truth: Annotated[Optional[Path], typer.Option("--truth", help="Also write each unit's true effect here.")] = None,
+) -> None:
+    """Simulate a pooled multi-site trial with known truth from a synthetic_sites design."""
+    from .console import console
+    from .simulate import simulate as simulate_trial
+    from .simulate import write_simulation
+
+    trial = simulate_trial(design, n=n, seed=seed)
+    write_simulation(trial, out, truth=truth)
+    console.print(f"wrote {len(trial.data)} units from design '{trial.design.name}' to {out}"
+                  + (f" (truth: {truth})" if truth else ""))
+
+
+@app.command()
+@with_data_flags
+def blind(
+    flags: DataFlags,
+    out: OutOpt,
+    folds: FoldsOpt = 5,
+    models: ModelsOpt = "constant,s,t,x,r,dr",
+    force: ForceOpt = False,
+) -> None:
+    """Blind analysis (site hidden): propensities, average and heterogeneous effects, rules → claims.json."""
+    from .console import console
+    from .pipeline import blind_stage
+    from .screens import claims_renderables
+
+    spec = flags.to_spec()
+    config = _blind_config(spec.seed, folds, models)
+    with _fit_progress(config) as tick:
+        _, claims = blind_stage(spec, out, config, force=force, progress=tick)
+    for item in claims_renderables(claims.to_dict()):
+        console.print(item)
+    console.print(f"\nclaims: {out / 'claims.json'}")
+
+
+@app.command()
+@with_data_flags
+def unmask(
+    flags: DataFlags,
+    claims: Annotated[Path, typer.Option("--claims", help="Folder written by `siteproof blind`.")],
+    out: OutOpt,
+    transport: TransportOpt = False,
+    workers: WorkersOpt = 1,
+    fail_on: FailOnOpt = None,
+    force: ForceOpt = False,
+) -> None:
+    """Reveal sites and known rates; score every blind claim → scorecard.json with verdicts."""
+    from .pipeline import unmask_stage
+
+    result = unmask_stage(
+        flags.to_spec(), claims, out, margin=flags.margin, transport=transport, workers=workers, force=force
+    )
+    _print_scorecard(result.scorecard, out)
+    _exit_for(result.scorecard, fail_on)
+
+
+@app.command()
+@with_data_flags
+def run(
+    flags: DataFlags,
+    out: OutOpt,
+    folds: FoldsOpt = 5,
+    models: ModelsOpt = "constant,s,t,x,r,dr",
+    transport: TransportOpt = False,
+    workers: WorkersOpt = 1,
+    fail_on: FailOnOpt = None,
+    force: ForceOpt = False,
+) -> None:
+    """Blind analysis, unmasking and report in one go."""
+    from .pipeline import run_pipeline
+
+    spec = flags.to_spec()
+    config = _blind_config(spec.seed, folds, models)
+    with _fit_progress(config) as tick:
+        result = run_pipeline(
+            spec, out, config, margin=flags.margin, transport=transport, workers=workers, force=force, progress=tick
+        )
+    _print_scorecard(result.scorecard, out)
+    _exit_for(result.scorecard, fail_on)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# entry point: one-line errors, exit 2, no traceback
+# ---------------------------------------------------------------------------------------------------------
+def _usage_line(exc: click.exceptions.UsageError) -> str:
+    command = exc.ctx.command_path if exc.ctx is not None else "siteproof"
+    return f"error: {exc.format_message()} — see `{command} --help`"
+
+
+def main(argv: Optional[list[str]] = None) -> int:
+    """Console entry point; returns the exit status (0 ok, 1 `--fail-on` triggered, 2 user error)."""
+    command = typer.main.get_command(app)
+    warnings.simplefilter("always", SiteproofWarning)
+    warnings.showwarning = _show_warning
+    try:
+        result = command.main(args=argv, prog_name="siteproof", standalone_mode=False)
+    except SiteproofError as exc:
+        print(exc.one_line(), file=sys.stderr)
+        return 2
+    except click.exceptions.UsageError as exc:
+        print(" ".join(_usage_line(exc).split()), file=sys.stderr)
+        return 2
+    except click.exceptions.Abort:
+        print("error: interrupted — rerun the command; no partial outputs were kept", file=sys.stderr)
+        return 130
+    return int(result or 0)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:  # noqa: ANN001
+    """Print siteproof warnings as one line each on stderr; other libraries' warnings stay quiet."""
+    if issubclass(category, SiteproofWarning):
+        print(f"warning: {message}", file=sys.stderr)
+
+
+def entry() -> None:
+    """``siteproof`` executable."""
+    sys.exit(main())

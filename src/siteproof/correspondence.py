@@ -1,0 +1,232 @@
+"""Scoring a blind claim against its design-based counterpart: paired differences, TOST and verdicts.
+
+A blind estimate and the design-based estimate of the same number are computed on the same units, so their
+errors are correlated.  Both are means of per-unit scores, hence (design.md point 4)
+
+    D = mean(Γ_blind − Γ_design),   SE(D) = sd(Γ_blind − Γ_design)/√n,
+
+never √(SE_blind² + SE_design²).  Given D, its SE and an equivalence margin δ > 0:
+
+* difference test: two-sided z = D/SE, p = 2·Φ(−|z|); "different" when the (1 − α) CI of D excludes 0.
+* equivalence test, two one-sided tests (Schuirmann 1987):
+      p_lower = 1 − Φ((D + δ)/SE)  for H₀: D ≤ −δ,
+      p_upper = Φ((D − δ)/SE)      for H₀: D ≥ +δ,
+  p_TOST = max(p_lower, p_upper); "equivalent" when p_TOST < α, i.e. the (1 − 2α) CI D ± z_{1−α}·SE lies
+  inside (−δ, δ).
+* four classes (Tryon & Lewis 2008): equivalent and not different → "equivalent"; different and not
+  equivalent → "different"; both → "trivially different"; neither → "indeterminate".
+
+Percent bias reduction (Shadish, Clark & Steiner 2008) compares the bias left by an adjusted estimate with the
+bias of the naive one: PBR = 100·(1 − |adjusted bias| / |naive bias|).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+from scipy import stats
+
+from .errors import SiteproofError
+from .estimates import Estimate, normal_ci
+
+EQUIVALENT = "equivalent"
+DIFFERENT = "different"
+TRIVIALLY_DIFFERENT = "trivially different"
+INDETERMINATE = "indeterminate"
+VERDICTS = (EQUIVALENT, DIFFERENT, TRIVIALLY_DIFFERENT, INDETERMINATE)
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """A blind estimate scored against its design-based counterpart.
+
+    ``difference`` is D = blind − design with its SE and (1 − α) CI (95% at the default α = 0.05);
+    ``z``/``p_value`` test D = 0; ``p_equivalence`` is the TOST p-value for |D| ≥ ``margin`` and
+    ``equivalence_ci`` the (1 − 2α) CI it corresponds to (90% at α = 0.05).  When SE(D) = 0 (identical
+    scores) ``z`` is NaN and both tests take their limits (see :func:`difference_p_value`, :func:`tost_p_value`).
+    """
+
+    blind: float
+    design: float
+    difference: Estimate
+    z: float
+    p_value: float
+    margin: float
+    p_equivalence: float
+    equivalence_ci: tuple[float, float]
+    verdict: str
+    alpha: float = 0.05
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready summary (non-finite values stay NaN; ``outputs`` writes them as null)."""
+        return {
+            "blind": float(self.blind),
+            "design": float(self.design),
+            "difference": self.difference.to_dict(),
+            "z": float(self.z),
+            "p_value": float(self.p_value),
+            "margin": float(self.margin),
+            "p_equivalence": float(self.p_equivalence),
+            "equivalence_ci": [float(self.equivalence_ci[0]), float(self.equivalence_ci[1])],
+            "verdict": self.verdict,
+            "alpha": float(self.alpha),
+        }
+
+
+def paired_difference(
+    scores_blind: Sequence[float] | np.ndarray, scores_design: Sequence[float] | np.ndarray
+) -> Estimate:
+    """D = mean(Γ_b − Γ_d), SE = sd(Γ_b − Γ_d)/√n (n − 1 divisor), 95% Wald CI; scores are Γ_b − Γ_d."""
+    blind = _score_array(scores_blind, "blind")
+    design = _score_array(scores_design, "design")
+    if blind.size != design.size:
+        raise SiteproofError(
+            f"{blind.size} blind scores but {design.size} design scores",
+            "pass per-unit scores of the same units, in the same order, for both estimates",
+        )
+    if blind.size < 2:
+        raise SiteproofError("a paired difference needs at least 2 units", "score more units")
+    return Estimate.from_scores("blind − design", blind - design, estimand="difference")
+
+
+def compare(blind: float, design: float, se_difference: float, margin: float, alpha: float = 0.05) -> Comparison:
+    """Score a blind estimate against the design-based one when SE(D) comes from elsewhere (e.g. bootstrap).
+
+    D = blind − design; tests and verdict as in the module docstring (Schuirmann 1987; Tryon & Lewis 2008).
+    """
+    _check_margin_alpha(margin, alpha)
+    _check_se(se_difference)
+    blind, design = float(blind), float(design)
+    estimate = _difference_estimate(blind - design, float(se_difference), alpha)
+    return _comparison(blind, design, estimate, margin, alpha)
+
+
+def compare_scores(
+    scores_blind: Sequence[float] | np.ndarray,
+    scores_design: Sequence[float] | np.ndarray,
+    margin: float,
+    alpha: float = 0.05,
+) -> Comparison:
+    """Score a blind estimate against the design-based one from their per-unit scores on the same units."""
+    _check_margin_alpha(margin, alpha)
+    paired = paired_difference(scores_blind, scores_design)
+    blind = float(np.mean(np.asarray(scores_blind, dtype=float)))
+    design = float(np.mean(np.asarray(scores_design, dtype=float)))
+    estimate = _difference_estimate(paired.estimate, paired.se, alpha, paired.scores)
+    return _comparison(blind, design, estimate, margin, alpha)
+
+
+def verdict(difference: float, se: float, margin: float, alpha: float = 0.05) -> str:
+    """One of the four classes of Tryon & Lewis (2008) for D with SE and margin δ.
+
+    different  ⇔ two-sided p < α ⇔ the (1 − α) CI of D excludes 0;
+    equivalent ⇔ TOST p < α ⇔ the (1 − 2α) CI of D lies inside (−δ, δ) (Schuirmann 1987).
+    """
+    _check_margin_alpha(margin, alpha)
+    _check_se(se)
+    is_different = difference_p_value(difference, se) < alpha
+    is_equivalent = tost_p_value(difference, se, margin) < alpha
+    if is_equivalent and is_different:
+        return TRIVIALLY_DIFFERENT
+    if is_equivalent:
+        return EQUIVALENT
+    if is_different:
+        return DIFFERENT
+    return INDETERMINATE
+
+
+def difference_p_value(difference: float, se: float) -> float:
+    """Two-sided normal p-value 2·Φ(−|D|/SE) for D = 0; with SE = 0 it is 0 if D ≠ 0 and 1 if D = 0."""
+    if se == 0.0:
+        return 0.0 if difference != 0.0 else 1.0
+    return float(2.0 * stats.norm.sf(abs(difference) / se))
+
+
+def tost_p_value(difference: float, se: float, margin: float) -> float:
+    """max(1 − Φ((D + δ)/SE), Φ((D − δ)/SE)) — the larger of the two one-sided p-values (Schuirmann 1987).
+
+    With SE = 0 it is 0 when |D| < δ and 1 otherwise.
+    """
+    if se == 0.0:
+        return 0.0 if abs(difference) < margin else 1.0
+    p_lower = stats.norm.sf((difference + margin) / se)
+    p_upper = stats.norm.cdf((difference - margin) / se)
+    return float(max(p_lower, p_upper))
+
+
+def percent_bias_reduction(naive_bias: float, adjusted_bias: float) -> float:
+    """PBR = 100·(1 − |adjusted bias| / |naive bias|) (Shadish, Clark & Steiner 2008).
+
+    Biases are estimate − truth (here: blind − design).  100 means all the naive bias was removed, 0 none,
+    negative values mean the adjustment made things worse.  Undefined (NaN) when the naive bias is 0.
+    """
+    naive_bias, adjusted_bias = float(naive_bias), float(adjusted_bias)
+    if naive_bias == 0.0:
+        return float("nan")
+    return 100.0 * (1.0 - abs(adjusted_bias) / abs(naive_bias))
+
+
+def default_margin(y: Sequence[float] | np.ndarray) -> float:
+    """δ = 0.1 × SD(y) (n − 1 divisor) — a common practice for an equivalence margin, not a law.
+
+    Users should set the margin to the smallest difference that matters in their study.
+    """
+    y = np.asarray(y, dtype=float).ravel()
+    if y.size < 2 or not np.all(np.isfinite(y)):
+        raise SiteproofError(
+            "the default margin needs at least 2 finite outcome values",
+            "drop missing outcomes or set the margin explicitly (--margin)",
+        )
+    margin = 0.1 * float(np.std(y, ddof=1))
+    if margin <= 0.0:
+        raise SiteproofError("the outcome is constant, so 0.1 × SD(outcome) is 0", "set the margin explicitly")
+    return margin
+
+
+def _difference_estimate(d: float, se: float, alpha: float, scores: np.ndarray | None = None) -> Estimate:
+    """D with SE and its (1 − α) Wald CI, the interval the difference test uses."""
+    note = "" if alpha == 0.05 else f"CI level {1.0 - alpha:g} (alpha = {alpha:g})"
+    return Estimate("blind − design", d, se, normal_ci(d, se, 1.0 - alpha), "difference", scores, note)
+
+
+def _comparison(blind: float, design: float, difference: Estimate, margin: float, alpha: float) -> Comparison:
+    d, se = difference.estimate, difference.se
+    return Comparison(
+        blind=blind,
+        design=design,
+        difference=difference,
+        z=float(d / se) if se > 0 else float("nan"),
+        p_value=difference_p_value(d, se),
+        margin=float(margin),
+        p_equivalence=tost_p_value(d, se, margin),
+        equivalence_ci=normal_ci(d, se, 1.0 - 2.0 * alpha),
+        verdict=verdict(d, se, margin, alpha),
+        alpha=float(alpha),
+    )
+
+
+def _score_array(scores: Any, which: str) -> np.ndarray:
+    arr = np.asarray(scores, dtype=float).ravel()
+    if not np.all(np.isfinite(arr)):
+        raise SiteproofError(
+            f"the {which} scores contain NaN or infinite values",
+            "drop the affected units from both score vectors (keep them paired) or fix the nuisance estimates",
+        )
+    return arr
+
+
+def _check_se(se: float) -> None:
+    if not np.isfinite(se) or se < 0:
+        raise SiteproofError(f"the SE of the difference must be finite and ≥ 0, got {se}", "check how it was computed")
+
+
+def _check_margin_alpha(margin: float, alpha: float) -> None:
+    if not np.isfinite(margin) or margin <= 0:
+        raise SiteproofError(
+            f"the equivalence margin must be a positive number, got {margin}",
+            "set --margin to the smallest difference that matters (default: 0.1 × SD of the outcome)",
+        )
+    if not 0.0 < alpha < 0.5:
+        raise SiteproofError(f"alpha must lie in (0, 0.5), got {alpha}", "use e.g. alpha=0.05")
