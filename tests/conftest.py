@@ -6,6 +6,11 @@ import numpy as np
 import pandas as pd
 import pytest
 from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
+from threadpoolctl import threadpool_limits
+
+# Small test fits gain nothing from OpenMP threads, and on a busy 2-core machine oversubscribed threads slow
+# gradient boosting by an order of magnitude; one thread per test process keeps the suite's time predictable.
+threadpool_limits(1, "openmp")
 
 
 def small_trial(n: int = 1200, seed: int = 7, hidden: float = 0.0) -> pd.DataFrame:

@@ -8,6 +8,7 @@ import pytest
 from conftest import fast_config, small_trial
 from siteproof.blind import run_blind
 from siteproof.errors import SiteproofError
+from siteproof.outputs import to_json_text
 from siteproof.study import StudySpec, load_study
 
 SPEC = dict(data="trial.csv", outcome="score", treatment="treated", site="site", id="uid", cost="cost")
@@ -18,8 +19,9 @@ def _claims(frame, **config):
     return run_blind(study.blind, fast_config(**config))
 
 
-def _without_timings(record: dict) -> dict:
-    return {k: v for k, v in record.items() if k != "timings"}
+def _without_timings(record: dict) -> str:
+    """The claims as they are written to claims.json (NaN → null), minus the wall-clock timings."""
+    return to_json_text({k: v for k, v in record.items() if k != "timings"})
 
 
 @pytest.fixture(scope="module")

@@ -36,7 +36,7 @@ from .effects import CATE_KEYS, CateFit, fit_cate
 from .errors import SiteproofError
 from .evaluation import blp, cost_curve, gates, r_loss_comparison, rank_metric
 from .nuisance import Nuisances, cross_fit_nuisances, make_folds
-from .rules import PolicyTree, budget_rule, cross_fitted_tree, rule_value, threshold_rule
+from .rules import TreeRule, budget_rule, cross_fitted_tree, rule_value, threshold_rule
 from .scores import arm_scores
 from .study import BlindData
 
@@ -107,7 +107,7 @@ class Claims:
     record: dict[str, Any]
     units: pd.DataFrame
     cate_fits: dict[str, CateFit] = field(repr=False)
-    tree: PolicyTree | None = field(default=None, repr=False)
+    tree: TreeRule | None = field(default=None, repr=False)
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``claims.json``."""
@@ -148,7 +148,6 @@ def _evaluate_model(
     if key == "constant":
         return out
     out["gates"] = gates(tau, gamma, k=config.gates_groups).to_dict()
-    out["high_low"] = gates(tau, gamma, k=2).to_dict()
     out["blp"] = blp(y, w, e, tau, nuis.mu0).to_dict()
     for kind in ("autoc", "qini"):
         out[kind] = rank_metric(tau, gamma, kind=kind, n_boot=config.n_boot, seed=config.seed).to_dict()
@@ -159,7 +158,7 @@ def _evaluate_model(
 
 def _rule_claims(
     data: BlindData, nuis: Nuisances, fits: dict[str, CateFit], config: BlindConfig,
-) -> tuple[list[dict[str, Any]], dict[str, np.ndarray], PolicyTree | None]:
+) -> tuple[list[dict[str, Any]], dict[str, np.ndarray], TreeRule | None]:
     """Threshold, budget and depth-2 tree rules with their doubly robust values (issue 3 item 7)."""
     gamma0, gamma1 = arm_scores(data.y, data.w, nuis.e_hat, nuis.mu0, nuis.mu1)
     records: list[dict[str, Any]] = []

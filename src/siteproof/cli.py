@@ -16,8 +16,12 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Annotated, Any, Callable, Optional
 
-import click
 import typer
+
+try:  # typer ≥ 0.20 carries its own copy of click
+    from typer import _click as click
+except ImportError:  # pragma: no cover - older typer uses the click package
+    import click
 
 from .errors import SiteproofError, SiteproofWarning
 
@@ -122,7 +126,8 @@ def _data_parameters() -> list[inspect.Parameter]:
 
 def with_data_flags(func: Callable[..., Any]) -> Callable[..., Any]:
     """Give a command the shared data flags; the command receives them packed as ``flags: DataFlags``."""
-    own = [p for p in inspect.signature(func).parameters.values() if p.name != "flags"]
+    hints = typing.get_type_hints(func, include_extras=True)
+    own = [p.replace(annotation=hints[p.name]) for p in inspect.signature(func).parameters.values() if p.name != "flags"]
     data_params = _data_parameters()
     names = {p.name for p in data_params}
 
@@ -131,9 +136,8 @@ def with_data_flags(func: Callable[..., Any]) -> Callable[..., Any]:
         flags = DataFlags(**{name: kwargs.pop(name) for name in names})
         return func(flags=flags, **kwargs)
 
-    positional = [p for p in own if p.kind == inspect.Parameter.POSITIONAL_OR_KEYWORD]
-    keyword = [p.replace(kind=inspect.Parameter.KEYWORD_ONLY) for p in own if p not in positional]
-    wrapper.__signature__ = inspect.Signature(data_params[:1] + positional + keyword + data_params[1:])  # type: ignore[attr-defined]
+    keyword = [p.replace(kind=inspect.Parameter.KEYWORD_ONLY) for p in own]
+    wrapper.__signature__ = inspect.Signature(data_params[:1] + keyword + data_params[1:])  # type: ignore[attr-defined]
     wrapper.__annotations__ = {p.name: p.annotation for p in wrapper.__signature__.parameters.values()}  # type: ignore[attr-defined]
     return wrapper
 
@@ -319,7 +323,7 @@ def main(argv: Optional[list[str]] = None) -> int:
     except click.exceptions.UsageError as exc:
         print(" ".join(_usage_line(exc).split()), file=sys.stderr)
         return 2
-    except click.exceptions.Abort:
+    except typer.Abort:
         print("error: interrupted — rerun the command; no partial outputs were kept", file=sys.stderr)
         return 130
     return int(result or 0)

@@ -1,0 +1,349 @@
+"""Heterogeneous-effect (CATE) models, out-of-fold for every unit.
+
+``fit_cate(key, ...)`` fits one model and returns τ̂(x_i) for every unit i from second-stage models trained
+on the folds other than fold(i).  The nuisance arrays (ê, μ̂₀, μ̂₁, m̂) are arguments: they come from
+cross-fitting (each unit's value from models not trained on that unit), so this module never fits a
+propensity or outcome model for the out-of-fold τ̂ itself.
+
+Models, selected by short keys (formulas in docs/methods-heterogeneity.md):
+
+* ``constant`` — τ̂ = mean of the AIPW scores Γ_j over the training folds (Robins, Rotnitzky & Zhao 1994).
+* ``s`` — one regression f(x, w) of Y on (X, W); τ̂(x) = f(x, 1) − f(x, 0) (Künzel, Sekhon, Bickel & Yu 2019).
+* ``t`` — τ̂ = μ̂₁ − μ̂₀, the two cross-fitted arm regressions (Künzel et al. 2019).
+* ``x`` — X-learner (Künzel et al. 2019): imputed effects D¹ = Y − μ̂₀(x) (treated), D⁰ = μ̂₁(x) − Y
+  (controls), regressions τ̂₁, τ̂₀ on X, combined as τ̂ = ê·τ̂₀ + (1 − ê)·τ̂₁.
+* ``r`` — R-learner (Nie & Wager 2021): weighted regression of (Y − m̂)/(W − ê) on X, weights (W − ê)².
+* ``dr`` — DR-learner (Kennedy 2023): regression of the AIPW pseudo-outcome Γ on X.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import numpy as np
+from sklearn.base import clone, is_classifier
+from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
+from sklearn.pipeline import Pipeline
+from sklearn.utils.validation import has_fit_parameter
+
+from .errors import SiteproofError
+from .scores import aipw_scores
+
+CATE_KEYS = ("constant", "s", "t", "x", "r", "dr")
+
+
+# --------------------------------------------------------------------------------------------------------
+# small fitted-model wrappers: each has predict(X) -> τ̂(X)
+# --------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class _ConstantModel:
+    """Predicts the same value for every unit (the constant model, or a degenerate one-class fit)."""
+
+    value: float
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        return np.full(np.asarray(X).shape[0], self.value, dtype=float)
+
+
+@dataclass(frozen=True, eq=False)
+class _DirectModel:
+    """τ̂(x) = g(x) for a regression g fitted to a pseudo-outcome (R- and DR-learner)."""
+
+    model: Any
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        return _predict(self.model, X)
+
+
+@dataclass(frozen=True, eq=False)
+class _SingleModel:
+    """S-learner: τ̂(x) = f(x, 1) − f(x, 0) for one regression f of Y on (X, W)."""
+
+    model: Any
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=float)
+        return _predict(self.model, _with_arm(X, 1.0)) - _predict(self.model, _with_arm(X, 0.0))
+
+
+@dataclass(frozen=True, eq=False)
+class _ArmDifferenceModel:
+    """T-learner: τ̂(x) = μ̂₁(x) − μ̂₀(x) from two arm regressions."""
+
+    treated: Any
+    control: Any
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        return _predict(self.treated, X) - _predict(self.control, X)
+
+
+@dataclass(frozen=True, eq=False)
+class _CrossImputedModel:
+    """X-learner: τ̂(x) = g(x)·τ̂₀(x) + (1 − g(x))·τ̂₁(x), g a regression of W on X clipped to [0, 1]."""
+
+    from_treated: Any
+    from_control: Any
+    weight: Any
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        g = np.clip(_predict(self.weight, X), 0.0, 1.0)
+        return g * _predict(self.from_control, X) + (1.0 - g) * _predict(self.from_treated, X)
+
+
+@dataclass(frozen=True, eq=False)
+class CateFit:
+    """An out-of-fold CATE fit.
+
+    ``tau[i]`` comes from models trained on folds ≠ fold(i) (for ``t``: the cross-fitted μ̂₁ − μ̂₀).
+    ``fold_models[k]`` is the second-stage model trained on the folds ≠ k; :meth:`predict` averages them to
+    transport τ̂ to new units.  ``bounds`` clips predictions (binary outcomes: [−1, 1]).
+    """
+
+    key: str
+    tau: np.ndarray
+    fold_models: list
+    bounds: tuple[float, float] | None = None
+
+    def predict(self, X_new: np.ndarray) -> np.ndarray:
+        """τ̂ for new units: the mean of the fold models' predictions (clipped to ``bounds`` if set)."""
+        X_new = np.asarray(X_new, dtype=float)
+        if X_new.ndim != 2:
+            raise SiteproofError("X_new must be a 2-D array (units × covariates)", "pass X_new with shape (n, p)")
+        pred = np.mean([m.predict(X_new) for m in self.fold_models], axis=0)
+        return _clip(pred, self.bounds)
+
+
+# --------------------------------------------------------------------------------------------------------
+# fitting helpers
+# --------------------------------------------------------------------------------------------------------
+def _with_arm(X: np.ndarray, arm: float | np.ndarray) -> np.ndarray:
+    """Append the treatment column W to X (the S-learner's design)."""
+    col = np.broadcast_to(np.asarray(arm, dtype=float), (X.shape[0],))
+    return np.column_stack([X, col])
+
+
+def _predict(model: Any, X: np.ndarray) -> np.ndarray:
+    """Regressor → predict; classifier → P(class 1)."""
+    if isinstance(model, _ConstantModel) or not is_classifier(model):
+        return np.asarray(model.predict(X), dtype=float)
+    proba = model.predict_proba(X)
+    return proba[:, list(model.classes_).index(1)].astype(float)
+
+
+def _fit(estimator: Any, X: np.ndarray, y: np.ndarray, seed: int, sample_weight: np.ndarray | None = None) -> Any:
+    """Clone ``estimator``, give it ``seed`` if it has an unset random_state, and fit it.
+
+    A classifier given a target with one class only returns that class's constant (P(class 1) ∈ {0, 1}).
+    """
+    if is_classifier(estimator) and np.unique(y).size < 2:
+        return _ConstantModel(float(y[0] == 1))
+    model = clone(estimator)
+    if "random_state" in model.get_params() and model.get_params()["random_state"] is None:
+        model.set_params(random_state=seed)
+    if sample_weight is None:
+        model.fit(X, y)
+    else:
+        model.fit(X, y, **{_weight_parameter(model): sample_weight})
+    return model
+
+
+def _weight_parameter(estimator: Any) -> str:
+    """Name of the fit() keyword carrying sample weights (a Pipeline passes them to its last step)."""
+    return f"{estimator.steps[-1][0]}__sample_weight" if isinstance(estimator, Pipeline) else "sample_weight"
+
+
+def _accepts_weights(estimator: Any) -> bool:
+    final = estimator.steps[-1][1] if isinstance(estimator, Pipeline) else estimator
+    return has_fit_parameter(final, "sample_weight")
+
+
+def _clip(tau: np.ndarray, bounds: tuple[float, float] | None) -> np.ndarray:
+    return tau if bounds is None else np.clip(tau, bounds[0], bounds[1])
+
+
+@dataclass(frozen=True, eq=False)
+class _Inputs:
+    """Validated arrays shared by the per-key fitters."""
+
+    X: np.ndarray
+    y: np.ndarray
+    w: np.ndarray
+    e_hat: np.ndarray
+    mu0: np.ndarray
+    mu1: np.ndarray
+    m_hat: np.ndarray
+    folds: np.ndarray
+    regressor: Any
+    outcome_model: Any
+    seed: int
+
+
+def _as_vector(name: str, value: Any, n: int) -> np.ndarray:
+    arr = np.asarray(value, dtype=float)
+    if arr.shape != (n,):
+        raise SiteproofError(f"{name} has shape {arr.shape}, expected ({n},)", f"pass one value of {name} per unit")
+    if not np.all(np.isfinite(arr)):
+        raise SiteproofError(f"{name} contains missing or infinite values", "impute or drop those units before fitting")
+    return arr
+
+
+def _validate(
+    key: str, X: Any, y: Any, w: Any, e_hat: Any, mu0: Any, mu1: Any, m_hat: Any, folds: Any,
+    binary_outcome: bool,
+) -> tuple[np.ndarray, ...]:
+    if key not in CATE_KEYS:
+        raise SiteproofError(f"unknown CATE model key {key!r}", f"use one of {', '.join(CATE_KEYS)}")
+    X = np.asarray(X, dtype=float)
+    if X.ndim != 2:
+        raise SiteproofError(f"X must be 2-D (units × covariates), got {X.ndim}-D", "pass X with shape (n, p)")
+    n = X.shape[0]
+    y, w, e_hat, mu0, mu1, m_hat = (
+        _as_vector(name, v, n)
+        for name, v in (("y", y), ("w", w), ("e_hat", e_hat), ("mu0", mu0), ("mu1", mu1), ("m_hat", m_hat))
+    )
+    if not np.all((w == 0) | (w == 1)):
+        raise SiteproofError("the treatment w must be coded 0/1", "recode the treatment column to 0 and 1")
+    if np.any((e_hat <= 0) | (e_hat >= 1)):
+        raise SiteproofError("e_hat must lie strictly inside (0, 1)", "clip the cross-fitted propensity away from 0 and 1")
+    if binary_outcome and not np.all((y == 0) | (y == 1)):
+        raise SiteproofError("binary_outcome=True but y is not coded 0/1", "recode the outcome or set binary_outcome=False")
+    folds = np.asarray(folds)
+    if folds.shape != (n,) or not np.issubdtype(folds.dtype, np.integer):
+        raise SiteproofError("folds must be one integer fold id per unit", "pass the fold ids used for cross-fitting")
+    if np.unique(folds).size < 2:
+        raise SiteproofError("out-of-fold fitting needs at least 2 folds", "use 2 or more folds")
+    return X, y, w, e_hat, mu0, mu1, m_hat, folds
+
+
+def _need_both_arms(w_train: np.ndarray, key: str, fold: int) -> None:
+    if w_train.min() == w_train.max():
+        raise SiteproofError(
+            f"the training folds for fold {fold} hold only one treatment arm, so the {key!r} model cannot be fit",
+            "use fewer folds or check that both arms are present",
+        )
+
+
+# --------------------------------------------------------------------------------------------------------
+# one second-stage fit per key, on the training folds `tr`
+# --------------------------------------------------------------------------------------------------------
+def _fit_constant(d: _Inputs, tr: np.ndarray) -> _ConstantModel:
+    gamma = aipw_scores(d.y[tr], d.w[tr], d.e_hat[tr], d.mu0[tr], d.mu1[tr])
+    return _ConstantModel(float(gamma.mean()))
+
+
+def _fit_single(d: _Inputs, tr: np.ndarray) -> _SingleModel:
+    return _SingleModel(_fit(d.outcome_model, _with_arm(d.X[tr], d.w[tr]), d.y[tr], d.seed))
+
+
+def _fit_arm_difference(d: _Inputs, tr: np.ndarray) -> _ArmDifferenceModel:
+    t, c = tr[d.w[tr] == 1], tr[d.w[tr] == 0]
+    return _ArmDifferenceModel(_fit(d.outcome_model, d.X[t], d.y[t], d.seed), _fit(d.outcome_model, d.X[c], d.y[c], d.seed))
+
+
+def _fit_cross_imputed(d: _Inputs, tr: np.ndarray) -> _CrossImputedModel:
+    t, c = tr[d.w[tr] == 1], tr[d.w[tr] == 0]
+    from_treated = _fit(d.regressor, d.X[t], d.y[t] - d.mu0[t], d.seed)
+    from_control = _fit(d.regressor, d.X[c], d.mu1[c] - d.y[c], d.seed)
+    weight = _fit(d.regressor, d.X[tr], d.w[tr], d.seed)
+    return _CrossImputedModel(from_treated, from_control, weight)
+
+
+def _fit_residual(d: _Inputs, tr: np.ndarray) -> _DirectModel:
+    resid_w = d.w[tr] - d.e_hat[tr]
+    pseudo = (d.y[tr] - d.m_hat[tr]) / resid_w
+    return _DirectModel(_fit(d.regressor, d.X[tr], pseudo, d.seed, sample_weight=resid_w**2))
+
+
+def _fit_doubly_robust(d: _Inputs, tr: np.ndarray) -> _DirectModel:
+    pseudo = aipw_scores(d.y[tr], d.w[tr], d.e_hat[tr], d.mu0[tr], d.mu1[tr])
+    return _DirectModel(_fit(d.regressor, d.X[tr], pseudo, d.seed))
+
+
+_FITTERS: dict[str, Callable[[_Inputs, np.ndarray], Any]] = {
+    "constant": _fit_constant,
+    "s": _fit_single,
+    "t": _fit_arm_difference,
+    "x": _fit_cross_imputed,
+    "r": _fit_residual,
+    "dr": _fit_doubly_robust,
+}
+
+
+def _out_of_fold_value(key: str, d: _Inputs, model: Any, te: np.ndarray) -> np.ndarray:
+    """τ̂ for the held-out fold; ``t`` uses the cross-fitted arrays, ``x`` weights with the cross-fitted ê."""
+    if key == "t":
+        return d.mu1[te] - d.mu0[te]
+    if key == "x":
+        g = d.e_hat[te]
+        return g * _predict(model.from_control, d.X[te]) + (1.0 - g) * _predict(model.from_treated, d.X[te])
+    return model.predict(d.X[te])
+
+
+def fit_cate(
+    key: str,
+    X: np.ndarray,
+    y: np.ndarray,
+    w: np.ndarray,
+    *,
+    e_hat: np.ndarray,
+    mu0: np.ndarray,
+    mu1: np.ndarray,
+    m_hat: np.ndarray,
+    folds: np.ndarray,
+    binary_outcome: bool = False,
+    learner: Any = None,
+    seed: int = 0,
+    progress: Callable[[str], None] | None = None,
+) -> CateFit:
+    """Fit the CATE model ``key`` out-of-fold: τ̂(x_i) from second-stage models trained on folds ≠ fold(i).
+
+    Parameters
+    ----------
+    key : one of ``CATE_KEYS`` (``constant``, ``s``, ``t``, ``x``, ``r``, ``dr``).
+    X, y, w : covariates (n, p), outcome (n,), treatment (n,) in {0, 1}.
+    e_hat, mu0, mu1, m_hat : cross-fitted nuisances ê(x) = P(W=1|x), μ̂_w(x) = E[Y|x, W=w], m̂(x) = E[Y|x].
+    folds : fold id per unit (the folds used for the nuisances, so fold k's τ̂ never sees fold k's data
+        through the second stage).
+    binary_outcome : y in {0, 1}; τ̂ is clipped to [−1, 1] and, with the default learner, the outcome
+        regressions of ``s`` and ``t`` are gradient-boosted classifiers returning P(Y=1).
+    learner : scikit-learn regressor used for every second-stage regression (a classifier is used through
+        P(class 1)); None → ``HistGradientBoostingRegressor(random_state=seed)`` with its defaults (which
+        switch on early stopping by themselves above 10 000 units).  Learners with an unset
+        ``random_state`` get ``seed``.  ``r`` needs a learner whose ``fit`` takes ``sample_weight``.
+    progress : optional callback, called once per fold with a label.
+
+    Fold use (all keys): for each fold k, the second stage is fit on units with fold ≠ k and predicts
+    fold k.  Exceptions: ``t`` takes τ̂ = μ̂₁ − μ̂₀ straight from the cross-fitted arrays and refits one arm
+    pair per fold only for :meth:`CateFit.predict`; ``x`` weights fold k's units with their cross-fitted
+    ê(x_i), while its fold models carry a regression of W on X for new units.
+
+    References: Künzel, Sekhon, Bickel & Yu (2019) PNAS 116(10); Nie & Wager (2021) Biometrika 108(2);
+    Kennedy (2023) Electron. J. Statist. 17(2); Robins, Rotnitzky & Zhao (1994) JASA 89.
+    """
+    X, y, w, e_hat, mu0, mu1, m_hat, folds = _validate(key, X, y, w, e_hat, mu0, mu1, m_hat, folds, binary_outcome)
+    if learner is None:
+        regressor: Any = HistGradientBoostingRegressor(random_state=seed)
+        outcome_model: Any = HistGradientBoostingClassifier(random_state=seed) if binary_outcome else regressor
+    else:
+        regressor = outcome_model = learner
+    if key == "r" and not _accepts_weights(regressor):
+        raise SiteproofError(
+            f"the learner {type(regressor).__name__} does not accept sample_weight, which the R-learner needs",
+            "pass a learner whose fit() takes sample_weight (e.g. HistGradientBoostingRegressor)",
+        )
+    d = _Inputs(X, y, w, e_hat, mu0, mu1, m_hat, folds, regressor, outcome_model, seed)
+    bounds = (-1.0, 1.0) if binary_outcome else None
+    tau = np.empty(X.shape[0], dtype=float)
+    fold_ids = np.unique(folds)
+    models = []
+    for k in fold_ids:
+        te, tr = np.flatnonzero(folds == k), np.flatnonzero(folds != k)
+        if key in ("s", "t", "x"):
+            _need_both_arms(w[tr], key, int(k))
+        model = _FITTERS[key](d, tr)
+        tau[te] = _out_of_fold_value(key, d, model, te)
+        models.append(model)
+        if progress is not None:
+            progress(f"{key} fold {int(k) + 1}/{fold_ids.size}")
+    return CateFit(key=key, tau=_clip(tau, bounds), fold_models=models, bounds=bounds)
