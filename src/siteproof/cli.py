@@ -302,6 +302,43 @@ def run(
     _exit_for(result.scorecard, fail_on)
 
 
+@app.command()
+@with_data_flags
+def seal(
+    flags: DataFlags,
+    out: Annotated[Path, typer.Option("--out", help="Benchmark folder (public/ and key/ are written inside).")],
+    holdout_share: Annotated[float, typer.Option("--holdout-share", help="Share of units whose outcome and treatment are blanked and graded (0 = grade every unit).")] = 0.0,
+    force: ForceOpt = False,
+) -> None:
+    """Seal a holdout benchmark: leak audit, then public data for students and a key for the teacher."""
+    from .console import console
+    from .holdout import seal_benchmark
+
+    result = seal_benchmark(flags.to_spec(), out, holdout_share=holdout_share, force=force)
+    console.print(f"sealed {result.n:,} units ({result.n_graded:,} graded); "
+                  f"design-based ATE {result.design_ate.estimate:.3f} (SE {result.design_ate.se:.3f}) kept in the key")
+    console.print(f"hand out: {Path(out) / 'public'}   keep sealed: {Path(out) / 'key'}")
+
+
+@app.command()
+def grade(
+    key: Annotated[Path, typer.Argument(help="The key/ folder written by `siteproof seal`.")],
+    submissions: Annotated[list[Path], typer.Argument(help="Submission CSV files or folders of them.")],
+    out: OutOpt,
+    rank_by: Annotated[str, typer.Option("--rank-by", help="autoc, qini, blp_beta2, rule_gain or ate_error.")] = "autoc",
+    reveal: Annotated[bool, typer.Option("--reveal", help="Also show per-site results (lets students rebuild the key).")] = False,
+    force: ForceOpt = False,
+) -> None:
+    """Grade submissions against a sealed key into a leaderboard (CSV, JSON, HTML)."""
+    from .console import console
+    from .holdout import grade_submissions, leaderboard_table, write_leaderboard
+
+    board = grade_submissions(key, submissions, rank_by=rank_by, reveal=reveal)
+    write_leaderboard(board, out, force=force)
+    console.print(leaderboard_table(board))
+    console.print(f"leaderboard: {Path(out) / 'leaderboard.html'}")
+
+
 # ---------------------------------------------------------------------------------------------------------
 # entry point: one-line errors, exit 2, no traceback
 # ---------------------------------------------------------------------------------------------------------
