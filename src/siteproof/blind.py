@@ -252,7 +252,7 @@ def run_blind(
         key: fit_cate(
             key, data.X, data.y, data.w, e_hat=nuis.e_hat, mu0=nuis.mu0, mu1=nuis.mu1, m_hat=nuis.m_hat,
             folds=folds, binary_outcome=data.binary_outcome, learner=config.cate_learner, seed=config.seed,
-            progress=tick,
+            progress=tick, nuisance_models=nuis.models,
         )
         for key in config.models
     }
@@ -291,9 +291,8 @@ def run_blind(
     return Claims(record=record, units=units, cate_fits=fits, tree=tree)
 
 
-def count_fits(config: BlindConfig, n_candidates: int = 2) -> int:
-    """Approximate number of model fits (progress-bar total): nuisances × candidates × folds + CATE stages."""
-    per_model = {"constant": 0, "t": 0, "s": 1, "x": 2, "r": 1, "dr": 1}
-    nuisance_fits = 4 * n_candidates * config.folds
-    return nuisance_fits + config.folds * sum(per_model.get(m, 1) for m in config.models)
-
+def count_fits(config: BlindConfig) -> int:
+    """Number of progress ticks of :func:`run_blind`: one per nuisance candidate and fold, one per effect
+    model and fold (the progress-bar total)."""
+    candidates = 2 if config.nuisance_learners is None else 1
+    return config.folds * (4 * candidates + len(config.models))

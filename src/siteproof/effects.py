@@ -19,15 +19,15 @@ Models, selected by short keys (formulas in docs/methods-heterogeneity.md):
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
-from sklearn.base import clone, is_classifier
 from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
 from sklearn.pipeline import Pipeline
 from sklearn.utils.validation import has_fit_parameter
 
 from .errors import SiteproofError
+from .learners import ConstantModel, fit_model, predict_model
 from .scores import aipw_scores
 
 CATE_KEYS = ("constant", "s", "t", "x", "r", "dr")
@@ -37,23 +37,13 @@ CATE_KEYS = ("constant", "s", "t", "x", "r", "dr")
 # small fitted-model wrappers: each has predict(X) -> τ̂(X)
 # --------------------------------------------------------------------------------------------------------
 @dataclass(frozen=True, eq=False)
-class _ConstantModel:
-    """Predicts the same value for every unit (the constant model, or a degenerate one-class fit)."""
-
-    value: float
-
-    def predict(self, X: np.ndarray) -> np.ndarray:
-        return np.full(np.asarray(X).shape[0], self.value, dtype=float)
-
-
-@dataclass(frozen=True, eq=False)
 class _DirectModel:
     """τ̂(x) = g(x) for a regression g fitted to a pseudo-outcome (R- and DR-learner)."""
 
     model: Any
 
     def predict(self, X: np.ndarray) -> np.ndarray:
-        return _predict(self.model, X)
+        return predict_model(self.model, X)
 
 
 @dataclass(frozen=True, eq=False)
@@ -64,7 +54,7 @@ class _SingleModel:
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         X = np.asarray(X, dtype=float)
-        return _predict(self.model, _with_arm(X, 1.0)) - _predict(self.model, _with_arm(X, 0.0))
+        return predict_model(self.model, _with_arm(X, 1.0)) - predict_model(self.model, _with_arm(X, 0.0))
 
 
 @dataclass(frozen=True, eq=False)
@@ -75,7 +65,7 @@ class _ArmDifferenceModel:
     control: Any
 
     def predict(self, X: np.ndarray) -> np.ndarray:
-        return _predict(self.treated, X) - _predict(self.control, X)
+        return predict_model(self.treated, X) - predict_model(self.control, X)
 
 
 @dataclass(frozen=True, eq=False)
@@ -87,8 +77,8 @@ class _CrossImputedModel:
     weight: Any
 
     def predict(self, X: np.ndarray) -> np.ndarray:
-        g = np.clip(_predict(self.weight, X), 0.0, 1.0)
-        return g * _predict(self.from_control, X) + (1.0 - g) * _predict(self.from_treated, X)
+        g = np.clip(predict_model(self.weight, X), 0.0, 1.0)
+        return g * predict_model(self.from_control, X) + (1.0 - g) * predict_model(self.from_treated, X)
 
 
 @dataclass(frozen=True, eq=False)
@@ -123,36 +113,6 @@ def _with_arm(X: np.ndarray, arm: float | np.ndarray) -> np.ndarray:
     return np.column_stack([X, col])
 
 
-def _predict(model: Any, X: np.ndarray) -> np.ndarray:
-    """Regressor → predict; classifier → P(class 1)."""
-    if isinstance(model, _ConstantModel) or not is_classifier(model):
-        return np.asarray(model.predict(X), dtype=float)
-    proba = model.predict_proba(X)
-    return proba[:, list(model.classes_).index(1)].astype(float)
-
-
-def _fit(estimator: Any, X: np.ndarray, y: np.ndarray, seed: int, sample_weight: np.ndarray | None = None) -> Any:
-    """Clone ``estimator``, give it ``seed`` if it has an unset random_state, and fit it.
-
-    A classifier given a target with one class only returns that class's constant (P(class 1) ∈ {0, 1}).
-    """
-    if is_classifier(estimator) and np.unique(y).size < 2:
-        return _ConstantModel(float(y[0] == 1))
-    model = clone(estimator)
-    if "random_state" in model.get_params() and model.get_params()["random_state"] is None:
-        model.set_params(random_state=seed)
-    if sample_weight is None:
-        model.fit(X, y)
-    else:
-        model.fit(X, y, **{_weight_parameter(model): sample_weight})
-    return model
-
-
-def _weight_parameter(estimator: Any) -> str:
-    """Name of the fit() keyword carrying sample weights (a Pipeline passes them to its last step)."""
-    return f"{estimator.steps[-1][0]}__sample_weight" if isinstance(estimator, Pipeline) else "sample_weight"
-
-
 def _accepts_weights(estimator: Any) -> bool:
     final = estimator.steps[-1][1] if isinstance(estimator, Pipeline) else estimator
     return has_fit_parameter(final, "sample_weight")
@@ -177,6 +137,7 @@ class _Inputs:
     regressor: Any
     outcome_model: Any
     seed: int
+    nuisance_models: Mapping[str, Sequence[Any]]
 
 
 def _as_vector(name: str, value: Any, n: int) -> np.ndarray:
@@ -227,40 +188,48 @@ def _need_both_arms(w_train: np.ndarray, key: str, fold: int) -> None:
 # --------------------------------------------------------------------------------------------------------
 # one second-stage fit per key, on the training folds `tr`
 # --------------------------------------------------------------------------------------------------------
-def _fit_constant(d: _Inputs, tr: np.ndarray) -> _ConstantModel:
+def _fit_constant(d: _Inputs, tr: np.ndarray, k: int) -> ConstantModel:
     gamma = aipw_scores(d.y[tr], d.w[tr], d.e_hat[tr], d.mu0[tr], d.mu1[tr])
-    return _ConstantModel(float(gamma.mean()))
+    return ConstantModel(float(gamma.mean()))
 
 
-def _fit_single(d: _Inputs, tr: np.ndarray) -> _SingleModel:
-    return _SingleModel(_fit(d.outcome_model, _with_arm(d.X[tr], d.w[tr]), d.y[tr], d.seed))
+def _fit_single(d: _Inputs, tr: np.ndarray, k: int) -> _SingleModel:
+    return _SingleModel(fit_model(d.outcome_model, _with_arm(d.X[tr], d.w[tr]), d.y[tr], seed=d.seed))
 
 
-def _fit_arm_difference(d: _Inputs, tr: np.ndarray) -> _ArmDifferenceModel:
+def _fit_arm_difference(d: _Inputs, tr: np.ndarray, k: int) -> _ArmDifferenceModel:
+    """Arm regressions on the training folds: the nuisance fold models when given, else refit."""
+    if "mu0" in d.nuisance_models and "mu1" in d.nuisance_models:
+        return _ArmDifferenceModel(d.nuisance_models["mu1"][k], d.nuisance_models["mu0"][k])
     t, c = tr[d.w[tr] == 1], tr[d.w[tr] == 0]
-    return _ArmDifferenceModel(_fit(d.outcome_model, d.X[t], d.y[t], d.seed), _fit(d.outcome_model, d.X[c], d.y[c], d.seed))
+    return _ArmDifferenceModel(fit_model(d.outcome_model, d.X[t], d.y[t], seed=d.seed),
+                               fit_model(d.outcome_model, d.X[c], d.y[c], seed=d.seed))
 
 
-def _fit_cross_imputed(d: _Inputs, tr: np.ndarray) -> _CrossImputedModel:
+def _fit_cross_imputed(d: _Inputs, tr: np.ndarray, k: int) -> _CrossImputedModel:
+    """Imputed-effect regressions; the weight g(x) for new units is the propensity fold model when given."""
     t, c = tr[d.w[tr] == 1], tr[d.w[tr] == 0]
-    from_treated = _fit(d.regressor, d.X[t], d.y[t] - d.mu0[t], d.seed)
-    from_control = _fit(d.regressor, d.X[c], d.mu1[c] - d.y[c], d.seed)
-    weight = _fit(d.regressor, d.X[tr], d.w[tr], d.seed)
+    from_treated = fit_model(d.regressor, d.X[t], d.y[t] - d.mu0[t], seed=d.seed)
+    from_control = fit_model(d.regressor, d.X[c], d.mu1[c] - d.y[c], seed=d.seed)
+    if "propensity" in d.nuisance_models:
+        weight = d.nuisance_models["propensity"][k]
+    else:
+        weight = fit_model(d.regressor, d.X[tr], d.w[tr], seed=d.seed)
     return _CrossImputedModel(from_treated, from_control, weight)
 
 
-def _fit_residual(d: _Inputs, tr: np.ndarray) -> _DirectModel:
+def _fit_residual(d: _Inputs, tr: np.ndarray, k: int) -> _DirectModel:
     resid_w = d.w[tr] - d.e_hat[tr]
     pseudo = (d.y[tr] - d.m_hat[tr]) / resid_w
-    return _DirectModel(_fit(d.regressor, d.X[tr], pseudo, d.seed, sample_weight=resid_w**2))
+    return _DirectModel(fit_model(d.regressor, d.X[tr], pseudo, seed=d.seed, sample_weight=resid_w**2))
 
 
-def _fit_doubly_robust(d: _Inputs, tr: np.ndarray) -> _DirectModel:
+def _fit_doubly_robust(d: _Inputs, tr: np.ndarray, k: int) -> _DirectModel:
     pseudo = aipw_scores(d.y[tr], d.w[tr], d.e_hat[tr], d.mu0[tr], d.mu1[tr])
-    return _DirectModel(_fit(d.regressor, d.X[tr], pseudo, d.seed))
+    return _DirectModel(fit_model(d.regressor, d.X[tr], pseudo, seed=d.seed))
 
 
-_FITTERS: dict[str, Callable[[_Inputs, np.ndarray], Any]] = {
+_FITTERS: dict[str, Callable[[_Inputs, np.ndarray, int], Any]] = {
     "constant": _fit_constant,
     "s": _fit_single,
     "t": _fit_arm_difference,
@@ -276,7 +245,7 @@ def _out_of_fold_value(key: str, d: _Inputs, model: Any, te: np.ndarray) -> np.n
         return d.mu1[te] - d.mu0[te]
     if key == "x":
         g = d.e_hat[te]
-        return g * _predict(model.from_control, d.X[te]) + (1.0 - g) * _predict(model.from_treated, d.X[te])
+        return g * predict_model(model.from_control, d.X[te]) + (1.0 - g) * predict_model(model.from_treated, d.X[te])
     return model.predict(d.X[te])
 
 
@@ -295,6 +264,7 @@ def fit_cate(
     learner: Any = None,
     seed: int = 0,
     progress: Callable[[str], None] | None = None,
+    nuisance_models: Mapping[str, Sequence[Any]] | None = None,
 ) -> CateFit:
     """Fit the CATE model ``key`` out-of-fold: τ̂(x_i) from second-stage models trained on folds ≠ fold(i).
 
@@ -312,11 +282,15 @@ def fit_cate(
         switch on early stopping by themselves above 10 000 units).  Learners with an unset
         ``random_state`` get ``seed``.  ``r`` needs a learner whose ``fit`` takes ``sample_weight``.
     progress : optional callback, called once per fold with a label.
+    nuisance_models : optional fitted nuisance models per fold (``Nuisances.models``: "mu0", "mu1",
+        "propensity" → one model per fold, trained on the other folds).  When given, ``t`` uses the arm models
+        and ``x`` the propensity models for new units instead of refitting them.
 
     Fold use (all keys): for each fold k, the second stage is fit on units with fold ≠ k and predicts
-    fold k.  Exceptions: ``t`` takes τ̂ = μ̂₁ − μ̂₀ straight from the cross-fitted arrays and refits one arm
-    pair per fold only for :meth:`CateFit.predict`; ``x`` weights fold k's units with their cross-fitted
-    ê(x_i), while its fold models carry a regression of W on X for new units.
+    fold k.  Exceptions: ``t`` takes τ̂ = μ̂₁ − μ̂₀ straight from the cross-fitted arrays; its fold models (for
+    :meth:`CateFit.predict`) are the nuisance arm models of that fold, refit only when ``nuisance_models`` is
+    not given; ``x`` weights fold k's units with their cross-fitted ê(x_i), while its fold models carry the
+    propensity model of that fold (or a regression of W on X) for new units.
 
     References: Künzel, Sekhon, Bickel & Yu (2019) PNAS 116(10); Nie & Wager (2021) Biometrika 108(2);
     Kennedy (2023) Electron. J. Statist. 17(2); Robins, Rotnitzky & Zhao (1994) JASA 89.
@@ -332,16 +306,16 @@ def fit_cate(
             f"the learner {type(regressor).__name__} does not accept sample_weight, which the R-learner needs",
             "pass a learner whose fit() takes sample_weight (e.g. HistGradientBoostingRegressor)",
         )
-    d = _Inputs(X, y, w, e_hat, mu0, mu1, m_hat, folds, regressor, outcome_model, seed)
+    d = _Inputs(X, y, w, e_hat, mu0, mu1, m_hat, folds, regressor, outcome_model, seed, nuisance_models or {})
     bounds = (-1.0, 1.0) if binary_outcome else None
     tau = np.empty(X.shape[0], dtype=float)
     fold_ids = np.unique(folds)
     models = []
-    for k in fold_ids:
+    for position, k in enumerate(fold_ids):
         te, tr = np.flatnonzero(folds == k), np.flatnonzero(folds != k)
         if key in ("s", "t", "x"):
             _need_both_arms(w[tr], key, int(k))
-        model = _FITTERS[key](d, tr)
+        model = _FITTERS[key](d, tr, position)
         tau[te] = _out_of_fold_value(key, d, model, te)
         models.append(model)
         if progress is not None:

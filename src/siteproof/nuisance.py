@@ -18,17 +18,18 @@ outcome, for μ̂₀, μ̂₁ and m̂ (fitted by classifiers, predictions P(Y = 
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Callable, Literal, Mapping
 
 import numpy as np
-from sklearn.base import BaseEstimator, RegressorMixin, clone, is_classifier
+from sklearn.base import BaseEstimator, RegressorMixin, is_classifier
 from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
 from sklearn.linear_model import LogisticRegression
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from .errors import SiteproofError
+from .learners import fit_model, predict_model
 
 NUISANCE_NAMES = ("propensity", "mu0", "mu1", "m")
 _PROB_FLOOR = 1e-15
@@ -86,6 +87,7 @@ class Nuisances:
     n_clipped: int
     picks: dict[str, str]
     losses: dict[str, dict[str, float]]
+    models: dict[str, list] = field(default_factory=dict, repr=False)   # picked learner's model per fold
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary without arrays: picks, losses, clip bounds, count clipped, number of folds."""
@@ -193,30 +195,15 @@ def fit_predict(
 ) -> np.ndarray:
     """Fit a fresh clone of ``estimator`` on (X_train, y_train) and predict for X_pred.
 
-    ``kind="classifier"`` returns P(class 1) from ``predict_proba`` (for a training set holding a single
-    class the prediction is that class, 0 or 1, since no classifier can be fitted); ``kind="regressor"``
-    returns ``predict``.  ``sample_weight`` is passed to ``fit`` (to the last step of a Pipeline).
+    ``kind="classifier"`` returns P(class 1) (a training set holding a single class predicts that class,
+    0 or 1, since no classifier can be fitted); ``kind="regressor"`` returns ``predict``.  ``sample_weight``
+    is passed to ``fit`` (to the last step of a Pipeline).  See :mod:`siteproof.learners`.
     """
-    y_train = np.asarray(y_train)
-    if kind == "classifier":
-        classes = np.unique(y_train)
-        if classes.size == 1:
-            return np.full(X_pred.shape[0], float(classes[0] == 1))
-    model = clone(estimator)
-    fit_kwargs: dict[str, Any] = {}
-    if sample_weight is not None:
-        key = f"{model.steps[-1][0]}__sample_weight" if isinstance(model, Pipeline) else "sample_weight"
-        fit_kwargs[key] = sample_weight
-    model.fit(X_train, y_train, **fit_kwargs)
-    if kind == "regressor":
-        return np.asarray(model.predict(X_pred), dtype=float)
-    column = np.flatnonzero(np.asarray(model.classes_) == 1)
-    if column.size != 1:
+    if (kind == "classifier") != bool(is_classifier(estimator)):
         raise SiteproofError(
-            f"classifier {type(estimator).__name__} was trained on labels {list(model.classes_)} without class 1",
-            "code the binary variable as 0/1",
+            f"{type(estimator).__name__} is not a {kind}", f"pass a scikit-learn {kind} for this model"
         )
-    return np.asarray(model.predict_proba(X_pred)[:, column[0]], dtype=float)
+    return predict_model(fit_model(estimator, X_train, y_train, sample_weight=sample_weight), X_pred)
 
 
 def cross_fit_nuisances(
@@ -244,11 +231,12 @@ def cross_fit_nuisances(
     candidates = _resolve_learners(learners, binary_outcome, seed)
     tick = progress or (lambda label="": None)
     oof = {name: {label: np.empty(y.size) for label in cands} for name, cands in candidates.items()}
+    fitted: dict[str, dict[str, list]] = {name: {label: [] for label in cands} for name, cands in candidates.items()}
 
     for k in np.unique(folds):
         test = np.flatnonzero(folds == k)
         train = np.flatnonzero(folds != k)
-        _fit_fold(X, y, w, train, test, candidates, oof, binary_outcome, tick, k)
+        _fit_fold(X, y, w, train, test, candidates, oof, fitted, tick, k)
 
     losses = {name: {label: _oof_loss(name, pred, y, w, binary_outcome) for label, pred in preds.items()}
               for name, preds in oof.items()}
@@ -265,32 +253,35 @@ def cross_fit_nuisances(
         n_clipped=int(np.count_nonzero((e_raw < lo) | (e_raw > hi))),
         picks=picks,
         losses=losses,
+        models={name: fitted[name][label] for name, label in picks.items()},
     )
 
 
 def _fit_fold(
     X: np.ndarray, y: np.ndarray, w: np.ndarray, train: np.ndarray, test: np.ndarray,
     candidates: dict[str, dict[str, Any]], oof: dict[str, dict[str, np.ndarray]],
-    binary_outcome: bool, tick: Callable[[str], None], k: int,
+    fitted: dict[str, dict[str, list]], tick: Callable[[str], None], k: int,
 ) -> None:
-    """Fit every candidate of every nuisance on the training rows of fold k; write predictions for its rows.
+    """Fit every candidate of every nuisance on the training rows of fold k; write predictions for its rows
+    and keep the fitted model (the picked ones are reused by the T- and X-learners and for new units).
 
     One copy of the training and test rows is made per fold and shared by all nuisances (μ̂_a take the
     arm-a subset of it); the copies are released when the fold is done.
     """
     X_train, X_test = X[train], X[test]
     w_train, y_train = w[train], y[train]
-    outcome_kind: Kind = "classifier" if binary_outcome else "regressor"
     arm_rows = {"mu0": w_train == 0, "mu1": w_train == 1}
     for name, cands in candidates.items():
         for label, estimator in cands.items():
             if name == "propensity":
-                pred = fit_predict(estimator, X_train, w_train, X_test, kind="classifier")
+                model = fit_model(estimator, X_train, w_train)
             elif name == "m":
-                pred = fit_predict(estimator, X_train, y_train, X_test, kind=outcome_kind)
+                model = fit_model(estimator, X_train, y_train)
             else:
                 rows = arm_rows[name]
-                pred = fit_predict(estimator, X_train[rows], y_train[rows], X_test, kind=outcome_kind)
+                model = fit_model(estimator, X_train[rows], y_train[rows])
+            pred = predict_model(model, X_test)
+            fitted[name][label].append(model)
             if not np.all(np.isfinite(pred)):
                 raise SiteproofError(
                     f"learner {label!r} for {name} returned missing or infinite predictions",
