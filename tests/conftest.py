@@ -2,15 +2,20 @@
 
 from __future__ import annotations
 
-import numpy as np
-import pandas as pd
-import pytest
+import os
+
+# One thread per test process: small test fits gain nothing from OpenMP/BLAS threads, and on a busy 2-core
+# machine oversubscribed threads slow gradient boosting by an order of magnitude.
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+import pytest  # noqa: E402
 from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
 from threadpoolctl import threadpool_limits
 
-# Small test fits gain nothing from OpenMP threads, and on a busy 2-core machine oversubscribed threads slow
-# gradient boosting by an order of magnitude; one thread per test process keeps the suite's time predictable.
-threadpool_limits(1, "openmp")
+threadpool_limits(1)  # in case numpy or scikit-learn were imported before this file set the variables
 
 
 def small_trial(n: int = 1200, seed: int = 7, hidden: float = 0.0) -> pd.DataFrame:

@@ -32,6 +32,16 @@ from .scores import aipw_scores
 
 CATE_KEYS = ("constant", "s", "t", "x", "r", "dr")
 
+#: Default second-stage boosting settings. Pseudo-outcomes such as (Y − m̂)/(W − ê) are much noisier than Y,
+#: and scikit-learn's default boosting overfits them at a few thousand units (on the demo design at n = 3000
+#: the R- and DR-learners' PEHE was about twice that of a constant effect); small trees, a slower learning
+#: rate, larger leaves, L2 shrinkage and early stopping on a 20 % validation split fix that (PEHE 2.5–2.6 vs
+#: the constant's 3.45) and cost less time.
+SECOND_STAGE_BOOSTING: dict[str, Any] = {
+    "learning_rate": 0.05, "max_iter": 300, "max_leaf_nodes": 8, "min_samples_leaf": 50,
+    "l2_regularization": 1.0, "early_stopping": True, "validation_fraction": 0.2, "n_iter_no_change": 20,
+}
+
 
 # --------------------------------------------------------------------------------------------------------
 # small fitted-model wrappers: each has predict(X) -> τ̂(X)
@@ -278,8 +288,8 @@ def fit_cate(
     binary_outcome : y in {0, 1}; τ̂ is clipped to [−1, 1] and, with the default learner, the outcome
         regressions of ``s`` and ``t`` are gradient-boosted classifiers returning P(Y=1).
     learner : scikit-learn regressor used for every second-stage regression (a classifier is used through
-        P(class 1)); None → ``HistGradientBoostingRegressor(random_state=seed)`` with its defaults (which
-        switch on early stopping by themselves above 10 000 units).  Learners with an unset
+        P(class 1)); None → histogram gradient boosting with the stronger regularisation of
+        ``SECOND_STAGE_BOOSTING`` (pseudo-outcomes are far noisier than outcomes).  Learners with an unset
         ``random_state`` get ``seed``.  ``r`` needs a learner whose ``fit`` takes ``sample_weight``.
     progress : optional callback, called once per fold with a label.
     nuisance_models : optional fitted nuisance models per fold (``Nuisances.models``: "mu0", "mu1",
@@ -297,8 +307,9 @@ def fit_cate(
     """
     X, y, w, e_hat, mu0, mu1, m_hat, folds = _validate(key, X, y, w, e_hat, mu0, mu1, m_hat, folds, binary_outcome)
     if learner is None:
-        regressor: Any = HistGradientBoostingRegressor(random_state=seed)
-        outcome_model: Any = HistGradientBoostingClassifier(random_state=seed) if binary_outcome else regressor
+        regressor: Any = HistGradientBoostingRegressor(**SECOND_STAGE_BOOSTING, random_state=seed)
+        outcome_model: Any = (HistGradientBoostingClassifier(**SECOND_STAGE_BOOSTING, random_state=seed)
+                              if binary_outcome else regressor)
     else:
         regressor = outcome_model = learner
     if key == "r" and not _accepts_weights(regressor):
