@@ -30,6 +30,7 @@ from siteproof.outputs import to_json_text
 from siteproof.scores import aipw_scores
 from siteproof.simulate import simulate
 from siteproof.study import StudySpec, load_study
+from siteproof.screens import SCREEN_RULES, scorecard_renderables
 from siteproof.unmask import (
     MISMATCH_WHAT,
     any_different,
@@ -37,7 +38,6 @@ from siteproof.unmask import (
     claim_verdicts,
     overlap_design_scores,
     run_unmask,
-    summary_renderables,
 )
 
 SPEC = dict(data="trial.csv", outcome="score", treatment="treated", site="site", id="uid", cost="cost")
@@ -235,13 +235,16 @@ def test_scorecard_json_contract(reference):
 def test_summary_has_one_line_per_claim_and_explains_its_numbers(reference):
     _, _, card = reference
     console = Console(width=220, record=True)
-    for item in summary_renderables(card):
+    for item in scorecard_renderables(card):
         console.print(item)
     text = console.export_text()
     assert card.headline in text.replace("\n", " ") or card.headline[:60] in text
     for label, verdict in claim_verdicts(card):
         name = label.split(" ", 1)[1]
+        if label.startswith("rule") and not name.endswith(SCREEN_RULES):
+            continue  # the screen lists threshold, top-20 % and tree rules; the rest are counted in a caption
         assert name in text
+    assert f"of {len(card.rules)} rules shown" in text
     assert "δ" in text and "Tryon & Lewis" in text and "equivalent" in text and "indeterminate" in text
     assert "units" in text  # column headers state the outcome's units
     assert any_different(card) == any(v == DIFFERENT for _, v in claim_verdicts(card))

@@ -173,9 +173,9 @@ def _fit_progress(config):
 
 def _print_scorecard(scorecard, out_dir: Path) -> None:
     from .console import console
-    from .unmask import summary_renderables
+    from .screens import scorecard_renderables
 
-    for item in summary_renderables(scorecard):
+    for item in scorecard_renderables(scorecard):
         console.print(item)
     console.print(f"\nscorecard: {out_dir / 'scorecard.json'}")
     if (out_dir / "report.html").exists():

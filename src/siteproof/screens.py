@@ -1,14 +1,21 @@
-"""Terminal screens for the blind claims: compact rich tables built from ``claims.json`` content.
+"""Terminal screens: the blind claims (from ``claims.json`` content) and the unmask scorecard.
 
-Presentation only — every number comes from the claims record; nothing is estimated here.
+Presentation only — every number comes from the claims record or the scorecard; nothing is estimated here.
 """
 
 from __future__ import annotations
 
 from typing import Any
 
+import numpy as np
+from rich import box
 from rich.table import Table
 from rich.text import Text
+
+from .correspondence import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, Comparison
+from .unmask import Scorecard
+
+SCREEN_RULES = (".threshold", ".top20", "tree")
 
 MODEL_NAMES = {
     "constant": "constant effect",
@@ -95,8 +102,9 @@ def cate_table(record: dict[str, Any]) -> Table:
     return table
 
 
-def rules_table(record: dict[str, Any], budgets_shown: tuple[str, ...] = ("threshold", "top20", "tree")) -> Table:
-    """Selected learned rules: treated share, value and gain over random allocation with the same share."""
+def rules_table(record: dict[str, Any]) -> Table:
+    """Each model's threshold and top-20 % rules and the tree: treated share, value, gain over random
+    allocation with the same share (every rule is in claims.json)."""
     table = Table(title="Learned treatment rules (doubly robust value, blind)", title_justify="left",
                   caption="Value: mean outcome (net of cost when a cost column exists) if the rule were followed. "
                           "Gain: value minus random allocation treating the same share. ± is one SE.",
@@ -104,7 +112,7 @@ def rules_table(record: dict[str, Any], budgets_shown: tuple[str, ...] = ("thres
     for col in ("rule", "treated", "value ± SE", "gain ± SE", "gain 95% CI"):
         table.add_column(col, justify="left" if col == "rule" else "right")
     for row in record["rules"]:
-        if not row["rule"].endswith(budgets_shown):
+        if not row["rule"].endswith(SCREEN_RULES):
             continue
         table.add_row(
             row["rule"], f"{100 * row['treated_share']:.0f}%",
@@ -123,3 +131,158 @@ def claims_renderables(record: dict[str, Any]) -> list[Any]:
     for message in record["warnings"]:
         items.append(Text(f"warning: {message}", style="bold"))
     return items
+
+
+# --------------------------------------------------------------------------------------------------------
+# the unmask screen: one-screen scorecard summary (rich renderables; the CLI prints them)
+# --------------------------------------------------------------------------------------------------------
+_STYLE = {EQUIVALENT: "green", TRIVIALLY_DIFFERENT: "yellow", DIFFERENT: "bold red", INDETERMINATE: "dim"}
+_STATUS_SHORT = {"confirmed": "yes", "not confirmed": "no", "missed": "missed", "none claimed, none found": "none"}
+
+
+def _v(verdict: str) -> Text:
+    return Text(verdict, style=_STYLE.get(verdict, ""))
+
+
+def _num(x: float | None, digits: int = 3) -> str:
+    return "—" if x is None or not np.isfinite(x) else f"{x:.{digits}g}"
+
+
+def _diff(c: Comparison) -> str:
+    """D ± the half-width of its 95 % CI (a Wald interval, so this is the CI written compactly)."""
+    d = c.difference
+    half = (d.ci[1] - d.ci[0]) / 2.0
+    return f"{_num(d.estimate)} ± {_num(half, 2)}"
+
+
+def _table(title: str, columns: list[tuple[str, str]]) -> Table:
+    """A compact table: one line per claim (no wrapping in the cells), headers may wrap."""
+    t = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, padding=(0, 0, 0, 1), pad_edge=False)
+    for header, justify in columns:
+        t.add_column(header, justify=justify, no_wrap=True)
+    return t
+
+
+def scorecard_renderables(scorecard: Scorecard) -> list:
+    """The one-screen summary: headline, one line per claim with its verdict, footnotes (not printed here)."""
+    s = scorecard.study
+    unit = s.get("outcome") or "outcome"
+    design = scorecard.design.estimate
+    out: list = [
+        Text(scorecard.headline, style="bold"),
+        Text(
+            f"{s['n']} units in {s['n_sites']} sites ({s['n_included']} compared). Known rates: "
+            f"{scorecard.rates_source}. Margin δ = {_num(scorecard.margin)} ({unit} units; {s['margin_source']}). "
+            f"Design-based ATE {_num(design.estimate)} (SE {_num(design.se)}), oracle AIPW "
+            f"{_num(scorecard.oracle.estimate)}, naive {_num(scorecard.naive.estimate)}.",
+            style="dim",
+        ),
+        _ate_table(scorecard, unit),
+    ]
+    if scorecard.cate:
+        out.append(_cate_table(scorecard, unit))
+    if scorecard.rules:
+        out.append(_rules_table(scorecard, unit))
+    out.append(_context_text(scorecard))
+    out.append(_footnote(scorecard, unit))
+    return out
+
+
+def _ate_table(scorecard: Scorecard, unit: str) -> Table:
+    t = _table(
+        f"Average effect ({unit} units): each blind estimator vs the pooled design-based ATE",
+        [("estimator", "left"), ("blind", "right"), ("design", "right"), ("D ± 95% CI", "right"),
+         ("bias\nred. %", "right"), ("verdict", "left")],
+    )
+    for row in scorecard.ate:
+        c = row.comparison
+        name = row.estimator + (" (ATO)" if row.same_estimand is not None else "")
+        t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _num(row.percent_bias_reduction), _v(c.verdict))
+        if row.same_estimand is not None:
+            same = row.same_estimand
+            t.add_row("  vs design ATO", _num(same.blind), _num(same.design), _diff(same), "", _v(same.verdict))
+    return t
+
+
+def _cate_table(scorecard: Scorecard, unit: str) -> Table:
+    t = _table(
+        f"Effect rankings: AUTOC ({unit} units) and BLP β₂ (ideal 1), blind vs design scores",
+        [("model", "left"), ("AUTOC\nblind", "right"), ("AUTOC\ndesign", "right"), ("D ± 95% CI", "right"),
+         ("verdict", "left"), ("β₂ blind/\ndesign", "right"), ("heter-\nogeneity", "left")],
+    )
+    for row in scorecard.cate:
+        a, b2 = row.autoc, row.beta2
+        beta = f"{_num(b2.blind, 2)}/{_num(b2.design, 2)}" if b2 is not None else "—"
+        status = row.heterogeneity["status"]
+        t.add_row(row.model, _num(a.blind), _num(a.design), _diff(a), _v(a.verdict), beta,
+                  _STATUS_SHORT.get(status, status))
+    return t
+
+
+def _rules_table(scorecard: Scorecard, unit: str) -> Table:
+    """The rules a reader compares first: each model's threshold rule and top-20 % budget rule, and the tree.
+
+    Every other budget rule is in scorecard.json and the report; the caption says how many.
+    """
+    shown = [row for row in scorecard.rules if row.rule.endswith(SCREEN_RULES)]
+    t = _table(
+        f"Treatment rules: gain over random allocation at the same treated share ({unit} units)",
+        [("rule", "left"), ("treat\n%", "right"), ("gain\nblind", "right"), ("gain\ndesign", "right"),
+         ("D ± 95% CI", "right"), ("verdict", "left"), ("sites\n+", "right")],
+    )
+    t.caption = (f"{len(shown)} of {len(scorecard.rules)} rules shown; the other budget rules are in "
+                 "scorecard.json and the report.")
+    t.caption_justify = "left"
+    for row in shown:
+        g = row.gain if row.has_contrast else row.value
+        agree, total = row.sites_agreeing
+        name = row.rule if row.has_contrast else f"{row.rule}*"
+        t.add_row(name, f"{100 * row.treated_share:.0f}", _num(g.blind), _num(g.design), _diff(g),
+                  _v(row.verdict), f"{agree}/{total}")
+    return t
+
+
+def _context_text(scorecard: Scorecard) -> Text:
+    p = scorecard.propensity
+    slope = p.calibration_slope
+    lines = [
+        f"Propensity: slope of the known rate e_S on ê {_num(slope.estimate)} (SE {_num(slope.se)}; ideal 1); "
+        f"RMSE |ê − e_S| {_num(p.rmse)} vs ≈ {_num(p.rmse_floor)} for a perfect ê (ê targets the mixture "
+        "E[e_S | X], not e_S)."
+    ]
+    if p.site_prediction is not None:
+        sp = p.site_prediction
+        lines.append(
+            f"Site visible from the covariates: cross-validated accuracy {100 * sp.accuracy.estimate:.0f}% vs "
+            f"{100 * sp.majority_share:.0f}% by always guessing the largest site."
+        )
+    if scorecard.meta_reml is not None:
+        m, dl = scorecard.meta_reml, scorecard.meta_dl
+        pi = m.prediction_interval
+        lines.append(
+            f"Between sites (per-site differences in means): Q = {_num(m.q)} (df {m.q_df}, "
+            f"p = {_num(m.q_pvalue, 2)}), I² = {m.i2:.0f}%, τ² = {_num(dl.tau2)} (DL) / {_num(m.tau2)} (REML, "
+            f"squared units); random-effects mean {_num(m.estimate)} (SE {_num(m.se)}); 95% prediction interval "
+            f"for a new site [{_num(pi[0])}, {_num(pi[1])}]."
+        )
+    if scorecard.transport is not None:
+        lines.append(scorecard.transport.summary_line())
+    return Text("\n".join(lines))
+
+
+def _footnote(scorecard: Scorecard, unit: str) -> Text:
+    return Text(
+        "D = blind − design, on the same units; its 95% CI uses the SE of the paired per-unit scores (AUTOC: "
+        f"shared bootstrap half-samples). δ = {_num(scorecard.margin)} {unit} units is the equivalence margin "
+        "(β₂: δ/sd(τ̂)). Verdicts (Tryon & Lewis 2008): equivalent = not different and the 90% CI of D inside ±δ; "
+        "different = the 95% CI excludes 0 and the 90% CI is not inside ±δ; trivially different = the 95% CI "
+        "excludes 0 but the 90% CI is inside ±δ; indeterminate = neither. Bias red. = 100·(1 − |D|/|D_naive|) "
+        "(Shadish, Clark & Steiner 2008). ATO = overlap-weighted effect, a different estimand from the ATE. "
+        "Heterogeneity (β₂ > 0 or AUTOC > 0, one-sided 5%): yes = claimed blind and confirmed with design "
+        "scores; no = claimed, not confirmed; missed = not claimed but found; none = neither. Sites + = sites "
+        "whose design gain has the sign of the blind gain / sites where the rule splits the units; * = the rule "
+        "treats everyone or no one (gain 0 by construction), so its value is compared. Design values use the "
+        "known rates "
+        f"({scorecard.rates_source}).",
+        style="dim",
+    )
