@@ -1,14 +1,53 @@
 """siteproof: blind observational analysis of pooled multi-site randomized trials, scored against each
 site's randomization.
 
-The public Python API mirrors the command line: intake (:func:`load_study`), the blind analysis
-(:func:`run_blind`), unmasking (:func:`run_unmask`), reports, holdout benchmarks and Monte Carlo studies.
+The public Python API mirrors the command line:
+
+* intake — :func:`load_study` with a :class:`StudySpec`;
+* the blind analysis — :func:`run_blind` with a :class:`BlindConfig` → claims;
+* unmasking — :func:`run_unmask` → scorecard; :func:`run_pipeline` does intake + blind + unmask + report;
+* :func:`run_demo`, :func:`load_design` (and ``siteproof.simulate.simulate``), :func:`random_effects`, :func:`seal_benchmark`,
+  :func:`grade_submissions`, :func:`write_report`, :func:`run_study`.
+
+Names are imported lazily so that ``import siteproof`` (and the command line) starts fast.
 """
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
 
 from .errors import SiteproofError, SiteproofWarning
 from .estimates import Estimate
-from .heterogeneity import RandomEffectsResult, random_effects
 
 __version__ = "0.1.0"
 
-__all__ = ["Estimate", "RandomEffectsResult", "SiteproofError", "SiteproofWarning", "__version__", "random_effects"]
+_LAZY = {
+    "StudySpec": "study",
+    "Study": "study",
+    "load_study": "study",
+    "BlindConfig": "blind",
+    "run_blind": "blind",
+    "run_unmask": "unmask",
+    "Scorecard": "unmask",
+    "run_pipeline": "pipeline",
+    "run_demo": "pipeline",
+    "load_design": "simulate",
+    "random_effects": "heterogeneity",
+    "RandomEffectsResult": "heterogeneity",
+    "seal_benchmark": "holdout",
+    "grade_submissions": "holdout",
+    "write_report": "report",
+    "run_study": "montecarlo",
+}
+
+__all__ = ["Estimate", "SiteproofError", "SiteproofWarning", "__version__", *sorted(_LAZY)]
+
+
+def __getattr__(name: str) -> Any:
+    """Import a public name from its module on first use (PEP 562)."""
+    if name in _LAZY:
+        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'siteproof' has no attribute {name!r}")

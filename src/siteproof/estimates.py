@@ -9,17 +9,18 @@ units are compared through mean(ψ_a − ψ_b) with SE sd(ψ_a − ψ_b)/√n.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from statistics import NormalDist
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
-Z95 = float(stats.norm.ppf(0.975))
+_NORMAL = NormalDist()
+Z95 = _NORMAL.inv_cdf(0.975)
 
 
 def normal_ci(estimate: float, se: float, level: float = 0.95) -> tuple[float, float]:
     """Wald interval estimate ± z_{1−α/2}·se."""
-    z = float(stats.norm.ppf(0.5 + level / 2.0))
+    z = _NORMAL.inv_cdf(0.5 + level / 2.0)
     return (float(estimate - z * se), float(estimate + z * se))
 
 
@@ -66,7 +67,7 @@ class Estimate:
     @property
     def p_value(self) -> float:
         """Two-sided normal p-value for estimate = 0."""
-        return float(2 * stats.norm.sf(abs(self.z))) if np.isfinite(self.z) else float("nan")
+        return 2.0 * _NORMAL.cdf(-abs(self.z)) if np.isfinite(self.z) else float("nan")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (scores are kept out; they go to the per-unit sidecar)."""
