@@ -8,6 +8,7 @@ units are compared through mean(ψ_a − ψ_b) with SE sd(ψ_a − ψ_b)/√n.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from statistics import NormalDist
 from typing import Any
@@ -67,7 +68,7 @@ class Estimate:
     @property
     def p_value(self) -> float:
         """Two-sided normal p-value for estimate = 0."""
-        return 2.0 * _NORMAL.cdf(-abs(self.z)) if np.isfinite(self.z) else float("nan")
+        return math.erfc(abs(self.z) / math.sqrt(2.0)) if np.isfinite(self.z) else float("nan")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (scores are kept out; they go to the per-unit sidecar)."""
