@@ -13,6 +13,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 import pytest  # noqa: E402
 from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
+from sklearn.linear_model import LinearRegression, LogisticRegression
 from threadpoolctl import threadpool_limits
 
 threadpool_limits(1)  # in case numpy or scikit-learn were imported before this file set the variables
@@ -60,3 +61,17 @@ def fast_config(seed: int = 3, **kwargs):
     defaults = dict(seed=seed, folds=3, n_boot=50, nuisance_learners=learners, cate_learner=reg)
     defaults.update(kwargs)
     return BlindConfig(**defaults)
+
+
+def cross_fit_linear(X: np.ndarray, y: np.ndarray, w: np.ndarray, folds: np.ndarray) -> dict[str, np.ndarray]:
+    """Cross-fitted logistic ê and linear μ̂₀, μ̂₁, m̂ written out by hand (each unit predicted from the other
+    folds) — an independent reference for tests of the effect models and their evaluation."""
+    out = {k: np.empty(len(y)) for k in ("e_hat", "mu0", "mu1", "m_hat")}
+    for k in np.unique(folds):
+        te, tr = folds == k, folds != k
+        out["e_hat"][te] = LogisticRegression().fit(X[tr], w[tr]).predict_proba(X[te])[:, 1]
+        for arm, name in ((1, "mu1"), (0, "mu0")):
+            sel = tr & (w == arm)
+            out[name][te] = LinearRegression().fit(X[sel], y[sel]).predict(X[te])
+        out["m_hat"][te] = LinearRegression().fit(X[tr], y[tr]).predict(X[te])
+    return out

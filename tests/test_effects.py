@@ -9,12 +9,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from sklearn.ensemble import HistGradientBoostingRegressor
-from sklearn.linear_model import LinearRegression, LogisticRegression
+from sklearn.linear_model import LinearRegression
 from sklearn.neighbors import KNeighborsRegressor
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
+from conftest import cross_fit_linear
 from siteproof.effects import CATE_KEYS, CateFit, fit_cate
 from siteproof.errors import SiteproofError
 from siteproof.scores import aipw_scores
@@ -58,17 +59,8 @@ def _dgp(n: int, seed: int) -> dict[str, np.ndarray]:
 
 
 def _cross_fit_linear(d: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """Cross-fitted logistic ê and linear μ̂₀, μ̂₁, m̂ (test helper; each unit predicted from the other folds)."""
-    X, y, w, folds = d["X"], d["y"], d["w"], d["folds"]
-    out = {k: np.empty(len(y)) for k in ("e_hat", "mu0", "mu1", "m_hat")}
-    for k in np.unique(folds):
-        te, tr = folds == k, folds != k
-        out["e_hat"][te] = LogisticRegression().fit(X[tr], w[tr]).predict_proba(X[te])[:, 1]
-        for arm, name in ((1, "mu1"), (0, "mu0")):
-            sel = tr & (w == arm)
-            out[name][te] = LinearRegression().fit(X[sel], y[sel]).predict(X[te])
-        out["m_hat"][te] = LinearRegression().fit(X[tr], y[tr]).predict(X[te])
-    return {**d, **out}
+    """The DGP dict with cross-fitted logistic/linear nuisances added (conftest.cross_fit_linear)."""
+    return {**d, **cross_fit_linear(d["X"], d["y"], d["w"], d["folds"])}
 
 
 # ---------------------------------------------------------------------------------------------- exact checks

@@ -14,9 +14,10 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 from sklearn.ensemble import HistGradientBoostingRegressor
-from sklearn.linear_model import LinearRegression, LogisticRegression
+from sklearn.linear_model import LinearRegression
 from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
+from conftest import cross_fit_linear
 from siteproof.effects import fit_cate
 from siteproof.errors import SiteproofError
 from siteproof.evaluation import (
@@ -299,17 +300,6 @@ def test_cost_curve_refuses_non_positive_costs():
 
 # ------------------------------------------------------------------------ learners under a null (no effect
 # heterogeneity): the R-loss difference from the constant model should not be significantly negative
-def _cross_fit(d: dict[str, np.ndarray], folds: np.ndarray) -> dict[str, np.ndarray]:
-    X, y, w = d["X"], d["y"], d["w"]
-    out = {k: np.empty(len(y)) for k in ("e_hat", "mu0", "mu1", "m_hat")}
-    for k in np.unique(folds):
-        te, tr = folds == k, folds != k
-        out["e_hat"][te] = LogisticRegression().fit(X[tr], w[tr]).predict_proba(X[te])[:, 1]
-        for arm, name in ((1, "mu1"), (0, "mu0")):
-            sel = tr & (w == arm)
-            out[name][te] = LinearRegression().fit(X[sel], y[sel]).predict(X[te])
-        out["m_hat"][te] = LinearRegression().fit(X[tr], y[tr]).predict(X[te])
-    return out
 
 
 def _null_rejections(seeds: range, n: int, learner) -> dict[str, int]:
@@ -318,7 +308,7 @@ def _null_rejections(seeds: range, n: int, learner) -> dict[str, int]:
     for seed in seeds:
         d = _dgp(n, seed=seed, null=True)
         folds = np.arange(n) % 5
-        nu = _cross_fit(d, folds)
+        nu = cross_fit_linear(d["X"], d["y"], d["w"], folds)
         fits = {key: fit_cate(key, d["X"], d["y"], d["w"], folds=folds, learner=learner, seed=seed, **nu)
                 for key in ("constant", *counts)}
         for key in counts:
