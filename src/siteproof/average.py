@@ -237,7 +237,8 @@ def overlap_summary(e_raw: np.ndarray, w: np.ndarray, clip: tuple[float, float])
     * share of units with ê outside [0.05, 0.95] (a trimming band in the spirit of Crump, Hotz, Imbens &
       Mitnik 2009), overall and per arm;
     * per arm: mean and quantiles of ê, and the Kish effective sample size (Σ a_i)²/Σ a_i² of the IPW
-      weights a_i = 1/ê_i (treated) or 1/(1 − ê_i) (control), ê clipped, with its share of the arm size.
+      weights a_i = 1/ê_i (treated) or 1/(1 − ê_i) (control), ê clipped, with its share of the arm size;
+    * counts of ê by arm on 40 equal-width bins of [0, 1] (the overlap histogram).
     """
     e_raw = _check_vector(e_raw, np.asarray(w).size, "e_raw")
     w = _as_binary(w)
@@ -265,6 +266,17 @@ def overlap_summary(e_raw: np.ndarray, w: np.ndarray, clip: tuple[float, float])
         "band": list(OVERLAP_BAND),
         "share_outside_band": float(outside.mean()),
         "by_arm": by_arm,
+        "histogram": _histogram_by_arm(e_raw, w),
+    }
+
+
+def _histogram_by_arm(e_raw: np.ndarray, w: np.ndarray, bins: int = 40) -> dict[str, list]:
+    """Counts of ê by arm on ``bins`` equal-width bins of [0, 1] (for the overlap figure)."""
+    edges = np.linspace(0.0, 1.0, bins + 1)
+    return {
+        "edges": edges.tolist(),
+        "treated": np.histogram(e_raw[w == 1], bins=edges)[0].tolist(),
+        "control": np.histogram(e_raw[w == 0], bins=edges)[0].tolist(),
     }
 
 

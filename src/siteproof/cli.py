@@ -303,6 +303,18 @@ def run(
 
 
 @app.command()
+def report(
+    run_dir: Annotated[Path, typer.Argument(help="A folder written by `siteproof run` or `unmask`.")],
+) -> None:
+    """Rewrite report.html, report.md and figures/ from a run folder's claims.json and scorecard.json."""
+    from .console import console
+    from .report import report_from_folder
+
+    paths = report_from_folder(run_dir)
+    console.print(f"report: {paths['html']}")
+
+
+@app.command()
 @with_data_flags
 def seal(
     flags: DataFlags,

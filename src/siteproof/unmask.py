@@ -46,7 +46,7 @@ from .correspondence import (
 from .design import DesignATE, design_ate, naive_ate, site_table
 from .errors import SiteproofError
 from .estimates import Estimate
-from .evaluation import BlpResult, blp, gates, r_loss_units, rank_metric
+from .evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
 from .heterogeneity import RandomEffectsResult, random_effects
 from .recovery import PropensityRecovery, recover_propensity
 from .rules import RuleValue, rule_value, rule_value_by_group
@@ -129,6 +129,8 @@ class CateComparison:
     beta2: Comparison | None
     autoc: Comparison
     qini: Comparison
+    toc_curve: dict[str, Any]
+    cost_curve: dict[str, Any] | None
     r_loss_blind: Estimate
     r_loss_design: Estimate
     r_loss_difference: Estimate
@@ -160,8 +162,9 @@ class CateComparison:
                 "beta2_margin_note": "margin δ/sd(τ̂): β₂·sd(τ̂) is the SD of the best linear predictor "
                 "of the effect, in outcome units",
             },
-            "autoc": self.autoc.to_dict(),
+            "autoc": {**self.autoc.to_dict(), "curve": self.toc_curve},
             "qini": self.qini.to_dict(),
+            "cost_curve": self.cost_curve,
             "r_loss": {
                 "blind": self.r_loss_blind.to_dict(),
                 "design": self.r_loss_design.to_dict(),
@@ -482,13 +485,14 @@ def _blp_comparison(u: _Units, tau: np.ndarray, margin: float) -> tuple[BlpResul
 
 
 def _rank_comparison(tau: np.ndarray, blind: np.ndarray, design: np.ndarray, kind: str, n_boot: int, seed: int,
-                     margin: float) -> tuple[Comparison, float]:
+                     margin: float) -> tuple[Comparison, float, dict[str, Any]]:
     """AUTOC / Qini of the τ̂ ranking with blind and design scores on the same half-samples (column 0 blind,
-    column 1 design); D's SE is the SD of the paired replicate differences.  Returns the comparison and the
-    design value's own SE."""
+    column 1 design); D's SE is the SD of the paired replicate differences.  Returns the comparison, the
+    design value's own SE and the design TOC curve (q grid, TOC(q), pointwise SE) for the report."""
     res = rank_metric(tau, np.column_stack([blind, design]), kind=kind, n_boot=n_boot, seed=seed)
     comp = compare(float(res.estimate[0]), float(res.estimate[1]), res.difference(0, 1).se, margin, ALPHA)
-    return comp, float(res.se[1])
+    curve = {"q": res.q.tolist(), "design": {"toc": res.toc[:, 1].tolist(), "se": res.toc_se[:, 1].tolist()}}
+    return comp, float(res.se[1]), curve
 
 
 def _one_sided_significant(estimate: float, se: float) -> bool:
@@ -524,8 +528,12 @@ def _cate_comparison(
     n_boot, seed = int(settings.get("n_boot", 200)), int(settings.get("seed", 0))
     high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, k, margin)
     fit_b, fit_d, beta2 = _blp_comparison(u, tau, margin)
-    autoc, autoc_design_se = _rank_comparison(tau, blind, design, "autoc", n_boot, seed, margin)
-    qini, _ = _rank_comparison(tau, blind, design, "qini", n_boot, seed, margin)
+    autoc, autoc_design_se, toc_curve = _rank_comparison(tau, blind, design, "autoc", n_boot, seed, margin)
+    qini, _, _ = _rank_comparison(tau, blind, design, "qini", n_boot, seed, margin)
+    costs = None
+    if u.cost is not None:
+        design_costs = cost_curve(tau, design, u.cost)
+        costs = {"x": design_costs.x.tolist(), "design": {"gain": design_costs.gain.tolist(), "se": design_costs.se.tolist()}}
     loss_b = r_loss_units(u.y, u.w, u.e_hat, u.m_hat, tau) - r_loss_units(u.y, u.w, u.e_hat, u.m_hat, tau_const)
     loss_d = r_loss_units(u.y, u.w, u.rate, u.m_star(), tau) - r_loss_units(u.y, u.w, u.rate, u.m_star(), tau_const)
     status = _heterogeneity_status(
@@ -536,8 +544,8 @@ def _cate_comparison(
     return CateComparison(
         model=key, n=u.n, tau_sd=float(np.std(tau, ddof=1)),
         high_low=high_low, gates=groups, top_minus_bottom=top_bottom,
-        blp_blind=fit_b, blp_design=fit_d, beta2=beta2, autoc=autoc, qini=qini,
-        r_loss_blind=Estimate.from_scores("r_loss_difference", loss_b, estimand="R-loss difference (blind: ê, m̂)"),
+        blp_blind=fit_b, blp_design=fit_d, beta2=beta2, autoc=autoc, qini=qini, toc_curve=toc_curve,
+        cost_curve=costs, r_loss_blind=Estimate.from_scores("r_loss_difference", loss_b, estimand="R-loss difference (blind: ê, m̂)"),
         r_loss_design=Estimate.from_scores("r_loss_difference", loss_d, estimand="R-loss difference (known e_S, m*)"),
         r_loss_difference=paired_difference(loss_b, loss_d),
         heterogeneity=status,
