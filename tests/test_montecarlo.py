@@ -14,14 +14,13 @@ import os
 import shutil
 import signal
 from contextlib import contextmanager
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import fast_config
 from sklearn.ensemble import RandomForestClassifier
 
-from conftest import fast_config
 from siteproof import montecarlo
 from siteproof.errors import SiteproofError
 from siteproof.montecarlo import (
@@ -120,7 +119,7 @@ def test_killed_worker_loses_no_finished_replicate(cluster_study, tmp_path):
     cluster_out, _ = cluster_study
     out = tmp_path / "killed"
     killed: list[int] = []
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster, \
             Client(cluster) as client:
         pids = sorted(client.run(os.getpid).values())
 

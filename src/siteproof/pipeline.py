@@ -40,6 +40,7 @@ def blind_stage(
     progress: Tick | None = None,
 ) -> tuple[Study, Claims]:
     """Intake and blind analysis; writes ``claims.json`` and ``units.parquet`` into ``out_dir``."""
+    check_out_dir(out_dir, force)  # refuse before any work, not after it
     study = load_study(spec)
     with StagedOutput(out_dir, force) as staged:
         claims = run_blind(study.blind, _config_for(spec, config), progress=progress)
@@ -52,6 +53,7 @@ def unmask_stage(
     transport: bool = False, workers: int = 1, force: bool = False, report: bool = True,
 ) -> PipelineResult:
     """Unmask earlier claims against the sites' randomization; writes ``scorecard.json`` (and the report)."""
+    check_out_dir(out_dir, force)
     study = load_study(spec)
     record, units = read_claims(claims_dir)
     scorecard = run_unmask(
@@ -70,6 +72,7 @@ def run_pipeline(
     progress: Tick | None = None,
 ) -> PipelineResult:
     """Blind + unmask (+ report) in one go, all outputs published together at the end."""
+    check_out_dir(out_dir, force)
     study = load_study(spec)
     claims = run_blind(study.blind, _config_for(spec, config), progress=progress)
     record = claims.to_dict()

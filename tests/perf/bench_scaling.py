@@ -27,7 +27,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import bench_blind  # noqa: E402  (sibling script: data, sklearn instrumentation, subprocess runner)
+import bench_blind  # sibling script: data, sklearn instrumentation, subprocess runner
 
 
 def scaling(sizes: list[int], p: int) -> list[dict]:
@@ -53,7 +53,7 @@ def dask_throughput(workers: int, n: int, replicates: int) -> float:
 
     from siteproof.montecarlo import run_study
 
-    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster, \
             Client(cluster) as client:
         client.run(_warm_up)
         with tempfile.TemporaryDirectory() as folder:
