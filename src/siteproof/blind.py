@@ -20,6 +20,7 @@ from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
+from threadpoolctl import threadpool_limits
 
 from . import __version__
 from .average import (
@@ -43,6 +44,7 @@ from .study import BlindData
 CLAIMS_SCHEMA = "siteproof/claims"
 CLAIMS_VERSION = 1
 ATE_ESTIMATORS = ("naive", "regression", "ipw", "aipw", "overlap")
+SMALL_DATA = 20_000  # below this many units the boosting fits run on one OpenMP thread (see _thread_limit)
 
 
 @dataclass(frozen=True)
@@ -58,6 +60,7 @@ class BlindConfig:
     budgets: tuple[float, ...] = (0.1, 0.2, 0.3, 0.4, 0.5)
     tree: bool = True
     tree_bins: int = 32
+    threads: int | None = None
     nuisance_learners: dict[str, Any] | None = field(default=None, compare=False)
     cate_learner: Any = field(default=None, compare=False)
 
@@ -80,6 +83,8 @@ class BlindConfig:
             raise SiteproofError("budget shares must lie strictly between 0 and 1", "use e.g. 0.1,0.2,0.3")
         if self.gates_groups < 2:
             raise SiteproofError("GATES needs at least 2 groups", "set gates_groups ≥ 2")
+        if self.threads is not None and self.threads < 1:
+            raise SiteproofError(f"threads = {self.threads} is not a positive count", "use threads ≥ 1, or None for the default")
         if self.n_boot < 20:
             raise SiteproofError("too few bootstrap draws for an SE", "use n_boot ≥ 20 (default 200)")
 
@@ -95,6 +100,7 @@ class BlindConfig:
             "budgets": list(self.budgets),
             "tree": self.tree,
             "tree_bins": self.tree_bins,
+            "threads": self.threads,
             "nuisance_learners": "default" if self.nuisance_learners is None else "user-supplied",
             "cate_learner": "default" if self.cate_learner is None else type(self.cate_learner).__name__,
         }
@@ -231,6 +237,23 @@ def run_blind(
     """
     config = config or BlindConfig()
     config.validate()
+    with threadpool_limits(limits=_thread_limit(config, data.y.size), user_api="openmp"):
+        return _run_blind(data, config, progress)
+
+
+def _thread_limit(config: BlindConfig, n: int) -> int | None:
+    """OpenMP threads for the boosting fits: ``config.threads``, else one thread below 20 000 units.
+
+    On small data a boosting fit gains little from threads, and when the cores are shared (several analyses,
+    a Monte Carlo study) threads that wait for descheduled siblings slow it by an order of magnitude; large
+    data keep every core (None = no limit).
+    """
+    if config.threads is not None:
+        return config.threads
+    return 1 if n < SMALL_DATA else None
+
+
+def _run_blind(data: BlindData, config: BlindConfig, progress: Callable[[str], None] | None) -> Claims:
     tick = progress or (lambda label="": None)
     timings: dict[str, float] = {}
     t0 = start = time.perf_counter()
