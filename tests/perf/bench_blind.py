@@ -15,6 +15,7 @@ prints, for the given n and p:
 from __future__ import annotations
 
 import argparse
+import functools
 import json
 import resource
 import subprocess
@@ -50,6 +51,7 @@ def _instrument_sklearn(totals: dict[str, float]) -> None:
                 continue
             original = getattr(cls, name)
 
+            @functools.wraps(original)  # keeps the signature: scikit-learn inspects fit() for sample_weight
             def wrapped(self, *a, __orig=original, **k):
                 depth["level"] += 1
                 t = time.perf_counter()
