@@ -351,6 +351,31 @@ def grade(
     console.print(f"leaderboard: {Path(out) / 'leaderboard.html'}")
 
 
+@app.command()
+def study(
+    design: Annotated[str, typer.Argument(help="A shipped design name or a design TOML file.")],
+    replicates: Annotated[int, typer.Option("--replicates", help="Number of simulated trials.")],
+    out: OutOpt,
+    n: Annotated[Optional[int], typer.Option("--n", help="Units per replicate (default: the design's).")] = None,
+    workers: Annotated[int, typer.Option("--workers", help="Local processes or LocalCluster workers.")] = 1,
+    scheduler: Annotated[Optional[str], typer.Option("--scheduler", help="'local' (a dask.distributed LocalCluster) or a scheduler address tcp://HOST:PORT; default: local processes.")] = None,
+    seed: Annotated[int, typer.Option("--seed", help="Study seed (same seed, same replicates.csv).")] = 0,
+) -> None:
+    """Monte Carlo design study: simulate, run blind + unmask, record bias, coverage and verdicts; resumable."""
+    from .console import console, progress_bar
+    from .montecarlo import run_study
+
+    result = run_study(design, replicates, out, n=n, workers=workers, scheduler=scheduler, seed=seed,
+                       progress=progress_bar)
+    console.print(
+        f"design '{result.design}', n = {result.n}, seed {result.seed}: {result.replicates} replicates "
+        f"({result.ran} run now, {result.reused} kept from an earlier run) in {result.seconds:.0f} s; "
+        f"population ATE {result.population_ate:.3f}"
+    )
+    console.print(f"replicates: {Path(out) / 'replicates.csv'}   summary: {Path(out) / 'summary.csv'}, "
+                  f"{Path(out) / 'summary.html'}")
+
+
 # ---------------------------------------------------------------------------------------------------------
 # entry point: one-line errors, exit 2, no traceback
 # ---------------------------------------------------------------------------------------------------------
