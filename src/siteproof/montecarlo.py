@@ -1,0 +1,592 @@
+"""Monte Carlo design studies: many simulated multi-site trials with a known truth, each run blind + unmask.
+
+A *study* draws R independent replicates from a synthetic_sites design (``simulate``).  Replicate r:
+
+1. its seeds come from ``numpy.random.SeedSequence(seed).spawn(R)[r]`` (child r is the same whatever R is,
+   so a study can be extended); three integers are drawn from the child with ``generate_state`` — one each
+   for the simulation, the blind analysis and the unmask step;
+2. it simulates n units, loads them as a study with the design's declared rates (the cost column is left
+   out, so rules rank by effect alone and their gains are in outcome units), runs the blind analysis with
+   the given :class:`~siteproof.blind.BlindConfig` (learners included) and unmasks the claims;
+3. it records one row per ATE estimator, per CATE model and per learned rule (:data:`COLUMNS`):
+
+   * **ATE estimators** (``kind = "ate"``; plus the design-based estimator of unmask as ``name = "design"``):
+     estimate, SE, 95 % CI, ``truth`` = the *population* ATE E[τ] of the design (``population_ate``, computed
+     once per study and stored in study.json), ``truth_sample`` = mean of the simulated units' τ_i,
+     ``error`` = estimate − truth, ``covered`` = [ci_low ≤ truth ≤ ci_high] (population truth) and
+     ``covered_sample`` (sample truth), and the unmask verdict.  The overlap-weighted estimator's verdict is
+     its same-estimand comparison (as in ``unmask.claim_verdicts``); its coverage is still measured against the
+     population ATE, a different estimand unless τ is constant.
+   * **CATE models** (``kind = "cate"``): PEHE = √(mean_i (τ̂_i − τ_i)²) of the out-of-fold τ̂ against the
+     true unit effects (Hill 2011), and the model's blind AUTOC claim with its CI against the *true AUTOC of the
+     same ranking*: the AUTOC statistic of ``evaluation.rank_metric`` computed with the true τ_i in place of
+     the doubly robust scores Γ_i (Yadlowsky et al., rank-weighted average treatment effects).  The true AUTOC is
+     an in-sample quantity (it depends on the fitted ranking), so ``truth_sample`` equals ``truth``.
+     The constant-effect model has no AUTOC; its row carries the PEHE only (the benchmark a model must beat).
+   * **Rules** (``kind = "rule"``): the blind gain over random allocation with the same treated share q̂ and
+     its CI against the true gain G = mean_i (π_i − q̂)·τ_i (Imai & Li 2023), with the unmask verdict.
+
+The ``design_based`` column holds the design-based counterpart the verdict compares with (unmask).
+
+Outputs in the study folder: ``study.json`` (the settings; a rerun with other settings is refused),
+``parts/rep-00042.csv`` (one file per finished replicate, written atomically as soon as it lands, so a killed
+worker never leaves a half row), ``replicates.csv`` (the parts of replicates 0..R−1 in replicate order,
+rebuilt at the end of every run), ``summary.csv`` (:func:`summarize`), ``timings.csv`` (seconds per
+replicate; kept apart so that replicates.csv depends on the seed only) and ``summary.html``
+(``studyreport``).  Rerunning with the same folder resumes: finished replicates are not redone.
+
+Execution: replicates are independent tasks.  ``workers = 1`` runs them in this process; ``workers > 1`` in
+local processes (``concurrent.futures.ProcessPoolExecutor``, spawn start method, one thread each);
+``scheduler = "local"`` starts a ``dask.distributed.LocalCluster`` with ``workers`` single-threaded worker
+processes; any other ``scheduler`` is the address of a running Dask scheduler (``tcp://HOST:PORT``).
+Results are collected as they complete (``as_completed``).  See docs/montecarlo.md.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+import multiprocessing
+import os
+import time
+import warnings
+from collections.abc import Callable, Iterator
+from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures import as_completed as futures_completed
+from concurrent.futures.process import BrokenProcessPool
+from contextlib import AbstractContextManager, closing, contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .blind import BlindConfig, run_blind
+from .correspondence import VERDICTS
+from .errors import SiteproofError, SiteproofWarning
+from .evaluation import rank_metric
+from .outputs import atomic_write_json, atomic_write_text, check_out_dir
+from .simulate import MIN_N, Design, SimulatedTrial, load_design, population_ate, simulate
+from .study import Study, StudySpec, load_study
+from .unmask import Scorecard, claim_verdicts, run_unmask
+
+SCHEMA = "siteproof/montecarlo-study"
+VERSION = 1
+Tick = Callable[[str], None]
+ProgressFactory = Callable[[str, int], AbstractContextManager[Tick]]
+
+#: columns of replicates.csv (one row per replicate × ATE estimator / CATE model / rule)
+COLUMNS = (
+    "replicate", "kind", "name", "estimate", "se", "ci_low", "ci_high", "truth", "truth_sample", "error",
+    "covered", "covered_sample", "design_based", "verdict", "pehe",
+)
+PARTS = "parts"
+_THREAD_VARIABLES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
+
+
+# ----------------------------------------------------------------------------------------------------------
+# one replicate
+# ----------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class ReplicateTask:
+    """Everything one replicate needs (picklable, so it can travel to a process or a Dask worker).
+
+    ``config`` is the blind configuration including its learners (its ``seed`` is replaced by the
+    replicate's own); ``site_learner`` is unmask's site classifier for propensity recovery (None: default).
+    """
+
+    design: Design
+    n: int
+    replicate: int
+    seeds: tuple[int, int, int]
+    truth: float
+    config: BlindConfig
+    site_learner: Any = None
+
+
+@dataclass(frozen=True)
+class ReplicateResult:
+    """The rows of one replicate (:data:`COLUMNS`) and its wall time in seconds."""
+
+    replicate: int
+    rows: pd.DataFrame
+    seconds: float
+    worker: str = ""
+
+
+def replicate_seeds(seed: int, replicates: int) -> list[tuple[int, int, int]]:
+    """(simulation, blind, unmask) seeds of replicates 0..R−1 from SeedSequence(seed).spawn(R).
+
+    Child r of the spawn has spawn key (r,), so replicate r gets the same seeds whatever R is.
+    """
+    children = np.random.SeedSequence(int(seed)).spawn(int(replicates))
+    return [tuple(int(v) for v in child.generate_state(3, dtype=np.uint32)) for child in children]
+
+
+def simulated_study(trial: SimulatedTrial, seed: int) -> Study:
+    """Load a simulated trial as a study: declared rates known, cost column left out of the analysis."""
+    roles = trial.design.roles
+    spec = StudySpec(
+        data=f"<simulated {trial.design.name}>", outcome=roles.outcome, treatment=roles.treatment,
+        site=roles.site, id=roles.id, covariates=list(roles.covariates), rates=dict(trial.rates), seed=seed,
+        name=trial.design.name,
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SiteproofWarning)
+        return load_study(spec, frame=trial.data)
+
+
+def run_replicate(task: ReplicateTask) -> ReplicateResult:
+    """Simulate, run blind + unmask and score every claim against the truth (see the module docstring)."""
+    start = time.perf_counter()
+    sim_seed, blind_seed, unmask_seed = task.seeds
+    trial = simulate(task.design, n=task.n, seed=sim_seed)
+    study = simulated_study(trial, seed=blind_seed)
+    claims = run_blind(study.blind, dataclasses.replace(task.config, seed=blind_seed))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SiteproofWarning)
+        card = run_unmask(study, claims.record, claims.units, seed=unmask_seed, site_learner=task.site_learner)
+    tau = trial.truth.set_index("id")["tau"].loc[claims.units["row_key"].to_numpy()].to_numpy(dtype=float)
+    rows = (
+        _ate_rows(claims.record, card, task.truth, float(tau.mean()))
+        + _cate_rows(claims.record, claims.units, card, tau)
+        + _rule_rows(claims.record, claims.units, card, tau)
+    )
+    frame = pd.DataFrame(rows, columns=list(COLUMNS[1:]))
+    frame.insert(0, "replicate", task.replicate)
+    return ReplicateResult(task.replicate, frame, time.perf_counter() - start, f"{os.uname().nodename}:{os.getpid()}")
+
+
+def _row(kind: str, name: str, est: dict[str, Any] | None, truth: float, truth_sample: float,
+         design_based: float = math.nan, verdict: str = "", pehe: float = math.nan) -> dict[str, Any]:
+    """One output row; ``est`` is an {estimate, se, ci} dict (None: no interval claim, e.g. PEHE only)."""
+    estimate, se, low, high = (math.nan,) * 4
+    if est is not None:
+        estimate, se = _num(est.get("estimate")), _num(est.get("se"))
+        low, high = (_num(v) for v in est.get("ci", (None, None)))
+    has_ci = math.isfinite(low) and math.isfinite(high)
+    return {
+        "kind": kind, "name": name, "estimate": estimate, "se": se, "ci_low": low, "ci_high": high,
+        "truth": truth, "truth_sample": truth_sample, "error": estimate - truth,
+        "covered": bool(low <= truth <= high) if has_ci and math.isfinite(truth) else None,
+        "covered_sample": bool(low <= truth_sample <= high) if has_ci and math.isfinite(truth_sample) else None,
+        "design_based": design_based, "verdict": verdict, "pehe": pehe,
+    }
+
+
+def _num(value: Any) -> float:
+    return math.nan if value is None else float(value)
+
+
+def _ate_rows(record: dict[str, Any], card: Scorecard, truth: float, truth_sample: float) -> list[dict[str, Any]]:
+    """Each blind ATE estimator, then unmask's design-based estimator as ``design``."""
+    verdicts = dict(claim_verdicts(card))
+    compared = {row.estimator: row for row in card.ate}
+    rows = []
+    for claim in record["ate"]:
+        name = claim["estimator"]
+        comp = compared.get(name)
+        design_value = math.nan
+        if comp is not None:
+            design_value = (comp.same_estimand or comp.comparison).design
+        rows.append(_row("ate", name, claim, truth, truth_sample, design_value, verdicts.get(f"ATE {name}", "")))
+    rows.append(_row("ate", "design", card.design.to_dict(), truth, truth_sample))
+    return rows
+
+
+def _cate_rows(record: dict[str, Any], units: pd.DataFrame, card: Scorecard, tau: np.ndarray) -> list[dict[str, Any]]:
+    """PEHE of every CATE model; blind AUTOC against the true AUTOC of the same ranking."""
+    verdicts = dict(claim_verdicts(card))
+    design_autoc = {row["model"]: row["autoc"]["design"] for row in card.to_dict()["cate"]}
+    rows = []
+    for claim in record["cate"]:
+        model = claim["model"]
+        tau_hat = units[f"tau_{model}"].to_numpy(dtype=float)
+        pehe = float(np.sqrt(np.mean((tau_hat - tau) ** 2)))
+        if "autoc" not in claim:
+            rows.append(_row("cate", model, None, math.nan, math.nan, pehe=pehe))
+            continue
+        true_autoc = true_rank_metric(tau_hat, tau)
+        rows.append(_row("cate", model, claim["autoc"], true_autoc, true_autoc,
+                         _num(design_autoc.get(model)), verdicts.get(f"CATE {model}", ""), pehe))
+    return rows
+
+
+def true_rank_metric(tau_hat: np.ndarray, tau: np.ndarray, kind: str = "autoc") -> float:
+    """AUTOC (or Qini) of the ranking by τ̂ with the true effects τ_i as the per-unit scores.
+
+    Uses :func:`siteproof.evaluation.rank_metric` for the statistic; only its point value is used (two
+    half-samples are drawn because the function always computes an SE).
+    """
+    return float(rank_metric(tau_hat, tau, kind=kind, n_boot=2, seed=0).estimate_of(0).estimate)
+
+
+def _rule_rows(record: dict[str, Any], units: pd.DataFrame, card: Scorecard, tau: np.ndarray) -> list[dict[str, Any]]:
+    """Blind gain of each rule against its true gain mean((π − q̂)·τ)."""
+    verdicts = dict(claim_verdicts(card))
+    design_gain = {row["rule"]: row["gain"]["design"] for row in card.to_dict()["rules"]}
+    rows = []
+    for claim in record["rules"]:
+        name = claim["rule"]
+        pi = units[f"rule_{name}"].to_numpy(dtype=float)
+        truth = float(np.mean((pi - pi.mean()) * tau))
+        rows.append(_row("rule", name, claim["gain"], truth, truth, _num(design_gain.get(name)),
+                         verdicts.get(f"rule {name}", "")))
+    return rows
+
+
+# ----------------------------------------------------------------------------------------------------------
+# the study folder
+# ----------------------------------------------------------------------------------------------------------
+def design_fingerprint(design: Design) -> str:
+    """sha256 of everything that defines the design's generative model (its file location excluded)."""
+    return hashlib.sha256(repr(dataclasses.replace(design, source="")).encode("utf-8")).hexdigest()
+
+
+def study_settings(design: Design, n: int, seed: int, config: BlindConfig) -> dict[str, Any]:
+    """The settings a study folder is bound to (study.json); a rerun must match them to resume."""
+    blind = config.to_dict()
+    blind.pop("seed")
+    return {"design": design.name, "design_fingerprint": design_fingerprint(design), "n": int(n),
+            "seed": int(seed), "blind": blind}
+
+
+def _open_folder(out: Path, settings: dict[str, Any]) -> dict[str, Any]:
+    """Create the study folder, or check that an existing one holds a study with the same settings."""
+    check_out_dir(out)
+    path = out / "study.json"
+    if path.exists():
+        stored = json.loads(path.read_text(encoding="utf-8"))
+        differing = [key for key in settings if stored.get("settings", {}).get(key) != settings[key]]
+        if differing:
+            old = stored.get("settings", {})
+            text = ", ".join(f"{k} {_short(old.get(k))} → {_short(settings[k])}" for k in differing)
+            raise SiteproofError(
+                f"{out} holds a study with other settings ({text})",
+                "rerun with the stored settings to resume it, or choose another --out folder",
+            )
+        return stored
+    if out.is_dir() and any(out.iterdir()):
+        raise SiteproofError(f"{out} is not empty and holds no study", "choose a new or empty --out folder")
+    return {}
+
+
+def _short(value: Any) -> str:
+    if isinstance(value, str) and len(value) == 64:
+        return value[:10] + "…"
+    return json.dumps(value, sort_keys=True) if isinstance(value, dict) else str(value)
+
+
+def part_path(out: Path, replicate: int) -> Path:
+    """Where replicate r's rows are written: parts/rep-00042.csv."""
+    return out / PARTS / f"rep-{replicate:05d}.csv"
+
+
+def finished_replicates(out: Path | str) -> set[int]:
+    """Replicate numbers whose part file exists (each was written atomically, so each is complete)."""
+    folder = Path(out) / PARTS
+    if not folder.is_dir():
+        return set()
+    return {int(p.stem.split("-")[1]) for p in folder.glob("rep-*.csv")}
+
+
+def _save(out: Path, result: ReplicateResult) -> None:
+    """Timing first, rows last: a part file exists only when the replicate is completely saved."""
+    atomic_write_json(out / PARTS / f"rep-{result.replicate:05d}.json",
+                      {"replicate": result.replicate, "seconds": result.seconds, "worker": result.worker})
+    atomic_write_text(part_path(out, result.replicate), result.rows.to_csv(index=False, lineterminator="\n"))
+
+
+def collect(out: Path | str, replicates: int) -> pd.DataFrame:
+    """Rebuild replicates.csv (and timings.csv) from the parts of replicates 0..R−1, in replicate order.
+
+    The file is the header followed by each part's rows verbatim, so numbers are never re-rounded.
+    """
+    out = Path(out)
+    done = sorted(r for r in finished_replicates(out) if r < replicates)
+    header, bodies = None, []
+    for r in done:
+        first, _, body = part_path(out, r).read_text(encoding="utf-8").partition("\n")
+        header = header or first
+        bodies.append(body)
+    text = (header + "\n" + "".join(bodies)) if header else ",".join(COLUMNS) + "\n"
+    atomic_write_text(out / "replicates.csv", text)
+    timings = [json.loads((out / PARTS / f"rep-{r:05d}.json").read_text(encoding="utf-8")) for r in done]
+    atomic_write_text(out / "timings.csv", pd.DataFrame(timings, columns=["replicate", "seconds", "worker"])
+                      .to_csv(index=False, lineterminator="\n"))
+    return read_replicates(out / "replicates.csv")
+
+
+def read_replicates(path: Path | str) -> pd.DataFrame:
+    """replicates.csv as a frame (floats parsed exactly; ``covered`` columns as nullable booleans)."""
+    frame = pd.read_csv(path, keep_default_na=False,
+                        na_values={c: [""] for c in COLUMNS if c not in ("kind", "name", "verdict")})
+    for column in ("covered", "covered_sample"):
+        frame[column] = frame[column].map({True: True, False: False, "True": True, "False": False}).astype("boolean")
+    return frame
+
+
+# ----------------------------------------------------------------------------------------------------------
+# summary
+# ----------------------------------------------------------------------------------------------------------
+def _share(flags: pd.Series) -> tuple[float, float, int]:
+    """Share of True among the non-missing flags, its Monte Carlo SE √(p(1−p)/R), and R."""
+    values = flags.dropna().astype(float)
+    r = int(values.size)
+    if r == 0:
+        return math.nan, math.nan, 0
+    p = float(values.mean())
+    return p, math.sqrt(p * (1 - p) / r), r
+
+
+def _mean_se(values: pd.Series) -> tuple[float, float]:
+    v = values.dropna().astype(float).to_numpy()
+    if v.size == 0:
+        return math.nan, math.nan
+    return float(v.mean()), float(v.std(ddof=1) / math.sqrt(v.size)) if v.size > 1 else math.nan
+
+
+def summarize(frame: pd.DataFrame) -> pd.DataFrame:
+    """One row per (kind, name), in order of first appearance.
+
+    Over the R replicates with a value: mean truth and estimate; bias = mean(error) with its Monte Carlo SE
+    sd(error)/√R; RMSE = √mean(error²); sd of the estimate and the mean reported SE (their ratio checks the SE);
+    coverage of the population truth and of the sample truth, each with its Monte Carlo SE √(p(1−p)/R);
+    the share of each verdict (``different`` with its Monte Carlo SE); mean PEHE with its Monte Carlo SE.
+    """
+    out = []
+    for (kind, name), group in frame.groupby(["kind", "name"], sort=False):
+        error = group["error"].dropna()
+        bias, bias_se = _mean_se(error)
+        coverage, coverage_se, r_cov = _share(group["covered"])
+        coverage_s, coverage_s_se, _ = _share(group["covered_sample"])
+        verdicts = group["verdict"][group["verdict"] != ""]
+        pehe, pehe_se = _mean_se(group["pehe"])
+        row = {
+            "kind": kind, "name": name, "replicates": int(group["replicate"].nunique()),
+            "truth_mean": float(group["truth"].mean()), "estimate_mean": float(group["estimate"].mean()),
+            "bias": bias, "bias_mcse": bias_se,
+            "rmse": float(np.sqrt(np.mean(error.to_numpy() ** 2))) if error.size else math.nan,
+            "sd_estimate": float(group["estimate"].std(ddof=1)) if group["estimate"].notna().sum() > 1 else math.nan,
+            "se_mean": float(group["se"].mean()),
+            "coverage": coverage, "coverage_mcse": coverage_se, "coverage_replicates": r_cov,
+            "coverage_sample": coverage_s, "coverage_sample_mcse": coverage_s_se,
+        }
+        for verdict in VERDICTS:
+            row[verdict.replace(" ", "_")] = float((verdicts == verdict).mean()) if verdicts.size else math.nan
+        row["different_mcse"] = _share(verdicts == "different")[1] if verdicts.size else math.nan
+        row["verdict_replicates"] = int(verdicts.size)
+        row["pehe_mean"], row["pehe_mcse"] = pehe, pehe_se
+        out.append(row)
+    return pd.DataFrame(out)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# execution back ends
+# ----------------------------------------------------------------------------------------------------------
+@contextmanager
+def _single_threaded_children() -> Iterator[None]:
+    """Child processes started inside inherit one-thread BLAS/OpenMP settings (unless the user set them).
+
+    Several workers on few cores would otherwise each start one thread per core; this mirrors the Dask
+    nanny's default ``pre-spawn-environ``.
+    """
+    added = [name for name in _THREAD_VARIABLES if name not in os.environ]
+    for name in added:
+        os.environ[name] = "1"
+    try:
+        yield
+    finally:
+        for name in added:
+            os.environ.pop(name, None)
+
+
+def _run_here(tasks: list[ReplicateTask]) -> Iterator[ReplicateResult]:
+    for task in tasks:
+        yield run_replicate(task)
+
+
+def _run_processes(tasks: list[ReplicateTask], workers: int) -> Iterator[ReplicateResult]:
+    """Local processes (spawn start method); results in completion order."""
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
+    try:
+        with _single_threaded_children():
+            futures = {pool.submit(run_replicate, task): task.replicate for task in tasks}
+        for future in futures_completed(futures):
+            try:
+                yield future.result()
+            except BrokenProcessPool:
+                raise _lost_worker(futures[future]) from None
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _lost_worker(replicate: int | None, detail: str = "") -> SiteproofError:
+    where = f" while running replicate {replicate}" if replicate is not None else ""
+    return SiteproofError(
+        f"a worker process died{where}{detail}",
+        "rerun the same command: finished replicates are kept and only the missing ones run",
+    )
+
+
+def _run_dask(tasks: list[ReplicateTask], workers: int, scheduler: str) -> Iterator[ReplicateResult]:
+    """A LocalCluster (``scheduler = "local"``) or a running scheduler; results in completion order.
+
+    A task whose worker dies is rescheduled on another worker by Dask itself; it fails only after the
+    scheduler's allowed number of worker deaths (``distributed.scheduler.allowed-failures``).
+    """
+    from dask.distributed import as_completed
+    from distributed.scheduler import KilledWorker
+
+    with _dask_client(workers, scheduler) as client:
+        futures = {client.submit(run_replicate, task, pure=False): task.replicate for task in tasks}
+        try:
+            for future in as_completed(futures):
+                try:
+                    yield future.result()
+                except KilledWorker as exc:
+                    raise _lost_worker(futures[future], f" repeatedly ({exc})") from None
+        finally:
+            client.cancel(list(futures))
+
+
+@contextmanager
+def _dask_client(workers: int, scheduler: str) -> Iterator[Any]:
+    """A client of a new LocalCluster with single-threaded workers, or of the scheduler at ``scheduler``."""
+    from dask.distributed import Client, LocalCluster
+
+    if scheduler == "local":
+        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster, \
+                Client(cluster) as client:
+            yield client
+        return
+    try:
+        client = Client(scheduler, timeout="20s")
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise SiteproofError(
+            f"cannot reach a Dask scheduler at {scheduler} ({type(exc).__name__})",
+            "start one with `dask scheduler` and `dask worker ADDRESS`, or use --scheduler local",
+        ) from None
+    with client:
+        yield client
+
+
+def _results(tasks: list[ReplicateTask], workers: int, scheduler: str | None) -> Iterator[ReplicateResult]:
+    if scheduler is not None:
+        return _run_dask(tasks, workers, scheduler)
+    if workers > 1 and len(tasks) > 1:
+        return _run_processes(tasks, workers)
+    return _run_here(tasks)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# the study
+# ----------------------------------------------------------------------------------------------------------
+@dataclass
+class StudyResult:
+    """What a study run left in ``out_dir``: R finished replicates (``ran`` of them in this call)."""
+
+    out_dir: Path
+    design: str
+    n: int
+    seed: int
+    replicates: int
+    ran: int
+    reused: int
+    seconds: float
+    population_ate: float
+    summary: pd.DataFrame = field(repr=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"out_dir": str(self.out_dir), "design": self.design, "n": self.n, "seed": self.seed,
+                "replicates": self.replicates, "ran": self.ran, "reused": self.reused,
+                "seconds": self.seconds, "population_ate": self.population_ate}
+
+
+def _check_arguments(replicates: int, n: int | None, workers: int, seed: int, scheduler: str | None) -> None:
+    def whole(value: Any) -> bool:
+        return isinstance(value, (int, np.integer)) and not isinstance(value, bool)
+
+    if not whole(replicates) or replicates < 1:
+        raise SiteproofError(f"--replicates {replicates!r} is not a whole number ≥ 1", "ask for e.g. --replicates 500")
+    if n is not None and (not whole(n) or n < MIN_N):
+        raise SiteproofError(f"--n {n!r} is not a whole number ≥ {MIN_N}", "give e.g. --n 3000 or leave --n out")
+    if not whole(workers) or workers < 1:
+        raise SiteproofError(f"--workers {workers!r} is not a whole number ≥ 1", "give e.g. --workers 2")
+    if not whole(seed) or seed < 0:
+        raise SiteproofError(f"--seed {seed!r} is not a whole number ≥ 0", "give e.g. --seed 1")
+    if scheduler is not None and scheduler != "local" and "://" not in scheduler and ":" not in scheduler:
+        raise SiteproofError(f"--scheduler {scheduler!r} is neither 'local' nor an address",
+                             "use --scheduler local or --scheduler tcp://HOST:PORT")
+
+
+def run_study(
+    design: str | Path | Design,
+    replicates: int,
+    out: str | Path,
+    *,
+    n: int | None = None,
+    workers: int = 1,
+    scheduler: str | None = None,
+    seed: int = 0,
+    config: BlindConfig | None = None,
+    site_learner: Any = None,
+    progress: ProgressFactory | None = None,
+    report: bool = True,
+) -> StudyResult:
+    """Run (or resume) a Monte Carlo design study of ``replicates`` replicates into the folder ``out``.
+
+    ``design``: a shipped design name, a design TOML path or a loaded :class:`Design`; ``n``: units per
+    replicate (default: the design's ``default_n``); ``workers``: local processes, or LocalCluster workers with
+    ``scheduler = "local"``; ``scheduler``: None (local processes), ``"local"`` or a Dask scheduler address;
+    ``seed``: the study seed (same seed ⇒ identical replicates.csv); ``config``: the blind settings and
+    learners (default ``BlindConfig()``; tests pass fast learners); ``site_learner``: unmask's site classifier;
+    ``progress``: a factory like :func:`siteproof.console.progress_bar` — called as
+    ``progress("replicates", total)`` and used as a context manager yielding ``tick(label)``.
+    """
+    _check_arguments(replicates, n, workers, seed, scheduler)
+    design = design if isinstance(design, Design) else load_design(design)
+    n = design.default_n if n is None else int(n)
+    config = config or BlindConfig()
+    config.validate()
+    out = Path(out)
+    settings = study_settings(design, n, seed, config)
+    stored = _open_folder(out, settings)
+    truth = stored.get("population_ate")
+    if truth is None:
+        truth = population_ate(design)
+    atomic_write_json(out / "study.json", {
+        "schema": SCHEMA, "version": VERSION, "siteproof_version": __version__, "settings": settings,
+        "replicates": max(int(replicates), int(stored.get("replicates", 0))), "population_ate": truth,
+        "truth_note": "coverage, bias and RMSE of ATE rows use the population ATE (population_ate: mean τ of "
+                      "200,000 fresh units); covered_sample uses the mean τ of each replicate's own units",
+        "design": design.to_dict(),
+    })
+    seeds = replicate_seeds(seed, replicates)
+    done = finished_replicates(out)
+    tasks = [ReplicateTask(design, n, r, seeds[r], truth, config, site_learner)
+             for r in range(replicates) if r not in done]
+    start = time.perf_counter()
+    with (progress or _quiet)("replicates", len(tasks)) as tick, closing(_results(tasks, workers, scheduler)) as results:
+        for result in results:
+            _save(out, result)
+            tick(f"replicate {result.replicate}")
+    frame = collect(out, replicates)
+    summary = summarize(frame)
+    atomic_write_text(out / "summary.csv", summary.to_csv(index=False, lineterminator="\n"))
+    if report:
+        from .studyreport import write_study_report
+
+        write_study_report(out, summary, json.loads((out / "study.json").read_text(encoding="utf-8")))
+    return StudyResult(out, design.name, n, seed, replicates, len(tasks), replicates - len(tasks),
+                       time.perf_counter() - start, float(truth), summary)
+
+
+@contextmanager
+def _quiet(description: str, total: int) -> Iterator[Tick]:
+    yield lambda label="": None
+
