@@ -65,7 +65,7 @@ from .outputs import StagedOutput, atomic_write_bytes, atomic_write_json, atomic
 from .rules import rule_value
 from .scores import arm_scores
 from .study import Study, StudySpec, load_study, read_table
-from .theme import stylesheet
+from .theme import page_head
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -1093,6 +1093,18 @@ def leaderboard_table(board: Leaderboard) -> Table:
     return table
 
 
+LEADERBOARD_CSS = """
+div.scroll { overflow-x: auto; }
+table.board th { white-space: normal; vertical-align: bottom; }
+table.board td { white-space: nowrap; border-bottom: none; }
+table.board tbody tr { background: none; }
+table.board tbody:nth-of-type(even) { background: var(--panel); }
+table.board tr.standing td { text-align: left; white-space: normal; color: var(--muted); font-size: 13.5px;
+  padding-top: 0; border-bottom: 1px solid var(--rule); }
+table.board .ranked { font-weight: 700; }
+"""
+
+
 def leaderboard_html(board: Leaderboard) -> str:
     """The leaderboard page: self-contained HTML (inline CSS, no scripts, no external resources)."""
     e = html.escape
@@ -1109,20 +1121,7 @@ def leaderboard_html(board: Leaderboard) -> str:
     bench = board.benchmark
     check = board.public_check[:1].upper() + board.public_check[1:]
     holdout = (f" (the {board.n_graded} held-out units of {bench['n']})" if bench["holdout_share"] > 0 else "")
-    return f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><meta name="viewport" content="width=device-width, initial-scale=1">
-<title>Leaderboard — {e(bench['name'])}</title>
-<style>{stylesheet()}
-div.scroll {{ overflow-x: auto; }}
-table.board th {{ white-space: normal; vertical-align: bottom; }}
-table.board td {{ white-space: nowrap; border-bottom: none; }}
-table.board tbody tr {{ background: none; }}
-table.board tbody:nth-of-type(even) {{ background: var(--panel); }}
-table.board tr.standing td {{ text-align: left; white-space: normal; color: var(--muted); font-size: 13.5px;
-  padding-top: 0; border-bottom: 1px solid var(--rule); }}
-table.board .ranked {{ font-weight: 700; }}
-</style></head>
-<body>
+    return page_head(f"Leaderboard — {bench['name']}", extra_css=LEADERBOARD_CSS) + f"""
 <header class="masthead"><div class="kicker">siteproof holdout benchmark · id {e(bench['benchmark_id'])}</div>
 <h1>Leaderboard — {e(bench['name'])}</h1>
 <p>{len(board.entries)} submissions graded on {board.n_graded} units{e(holdout)}, ranked by {e(info.label)}

@@ -322,17 +322,7 @@ class Document:
     def html(self) -> str:
         nav = "".join(f'<a href="#{s.key}">{i}. {_esc(s.title)}</a>' for i, s in enumerate(self.sections, 1))
         body = "\n".join(s.html(i) for i, s in enumerate(self.sections, 1))
-        return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta name="viewport" content="width=device-width, initial-scale=1">
-<meta name="generator" content="siteproof {_esc(__version__)}">
-<title>{_esc(self.title)}</title>
-<style>{theme.stylesheet()}</style>
-</head>
-<body>
-<header class="masthead">
+        return theme.page_head(self.title) + f"""<header class="masthead">
 <div class="kicker">siteproof report · a blind analysis scored against each site's randomization</div>
 <h1>{_esc(self.title)}</h1>
 <p>{_esc(self.headline)}</p>

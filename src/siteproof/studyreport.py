@@ -212,17 +212,7 @@ def study_html(summary: pd.DataFrame, study: dict[str, Any]) -> str:
     }
     dl = "".join(f"<dt>{_esc(k)}</dt><dd>{_esc(v)}</dd>" for k, v in facts.items())
     title = f"Design study: {settings.get('design', '')}"
-    return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta name="viewport" content="width=device-width, initial-scale=1">
-<meta name="generator" content="siteproof {_esc(__version__)}">
-<title>{_esc(title)}</title>
-<style>{theme.stylesheet()}</style>
-</head>
-<body>
-<header class="masthead">
+    return theme.page_head(title) + f"""<header class="masthead">
 <div class="kicker">siteproof design study · simulated multi-site trials with a known truth</div>
 <h1>{_esc(title)}</h1>
 <p>{replicates} replicates of {_esc(settings.get('n'))} units, each run blind and then unmasked.</p>

@@ -154,3 +154,23 @@ footer {{ margin-top: 40px; border-top: 3px double var(--ink); padding-top: 8px;
 @media print {{ body {{ max-width: none; }} section.summary {{ margin: 6px 0 10px; }}
 section.part {{ break-inside: avoid-page; }} }}
 """
+
+
+def page_head(title: str, extra_css: str = "") -> str:
+    """The start of a self-contained siteproof HTML page, up to and including ``<body>``: UTF-8, viewport,
+    generator, escaped title and the inline stylesheet (plus ``extra_css``); nothing is fetched."""
+    from html import escape
+
+    from . import __version__
+
+    return f"""<!DOCTYPE html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<meta name="generator" content="siteproof {escape(__version__)}">
+<title>{escape(title)}</title>
+<style>{stylesheet()}{extra_css}</style>
+</head>
+<body>
+"""
