@@ -40,6 +40,7 @@ def scaling(sizes: list[int], p: int) -> list[dict]:
         print(f"n = {n:>9,}: wall {result['wall']:8.1f} s, model fit/predict {result['model']:8.1f} s, "
               f"outside-model share {100 * result['outside_share']:5.1f} %, peak RSS {result['peak_rss_mb']:7.0f} MB, "
               f"load {_load()}", flush=True)
+        print(f"    stage timings (s): {result['timings']}", flush=True)
     walls = {r["n"]: r["wall"] for r in rows}
     for big, small in ((1_000_000, 100_000), (100_000, 10_000)):
         if big in walls and small in walls:
