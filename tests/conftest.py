@@ -53,7 +53,7 @@ def trial_frame() -> pd.DataFrame:
 
 def fast_config(seed: int = 3, **kwargs):
     """BlindConfig with small boosting models (fast, still flexible) for tests."""
-    from siteproof.blind import BlindConfig
+    from siteproof.blind.analysis import BlindConfig
 
     clf = HistGradientBoostingClassifier(max_iter=40, random_state=seed)
     reg = HistGradientBoostingRegressor(max_iter=40, random_state=seed)

@@ -5,7 +5,7 @@ Structure
 ``CASES`` is a list of ``(name, builder)`` pairs.  A builder takes a folder (``pathlib.Path``, e.g. pytest's
 ``tmp_path``), writes the files of the case into it and returns an :class:`IntakeCase`:
 
-* ``spec``     – keyword arguments for ``siteproof.study.StudySpec`` (``data`` is the written file);
+* ``spec``     – keyword arguments for ``siteproof.intake.study.StudySpec`` (``data`` is the written file);
 * ``kind``     – ``"error"``: ``load_study`` raises ``SiteproofError`` (the CLI prints one line
                  ``error: <what> — <how to fix>`` and exits with status 2), or ``"warning"``: ``load_study``
                  succeeds and records the warning in ``Study.warnings`` (the CLI goes on);

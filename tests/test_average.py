@@ -11,7 +11,7 @@ from scipy import stats
 from sklearn.linear_model import LinearRegression, LogisticRegression
 from sklearn.metrics import roc_auc_score
 
-from siteproof.average import (
+from siteproof.blind.average import (
     OVERLAP_ESTIMAND,
     aipw,
     balance_table,
@@ -25,9 +25,9 @@ from siteproof.average import (
     overlap_weighted,
     regression_adjusted,
 )
-from siteproof.errors import SiteproofError
-from siteproof.estimates import Z95
-from siteproof.nuisance import cross_fit_nuisances, make_folds
+from siteproof.core.errors import SiteproofError
+from siteproof.core.estimates import Z95
+from siteproof.blind.nuisance import cross_fit_nuisances, make_folds
 
 
 def _trial(n: int = 600, p: int = 4, seed: int = 0, share: float = 0.4):

@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 
 from conftest import fast_config, small_trial
-from siteproof.blind import run_blind
-from siteproof.errors import SiteproofError
-from siteproof.outputs import to_json_text
-from siteproof.study import StudySpec, load_study
+from siteproof.blind.analysis import run_blind
+from siteproof.core.errors import SiteproofError
+from siteproof.core.outputs import to_json_text
+from siteproof.intake.study import StudySpec, load_study
 
 SPEC = dict(data="trial.csv", outcome="score", treatment="treated", site="site", id="uid", cost="cost")
 

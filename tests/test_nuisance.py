@@ -10,8 +10,8 @@ from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
 from sklearn.neighbors import KNeighborsRegressor
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
-from siteproof.errors import SiteproofError
-from siteproof.nuisance import (
+from siteproof.core.errors import SiteproofError
+from siteproof.blind.nuisance import (
     GcvRidge,
     Nuisances,
     cross_fit_nuisances,

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from sklearn.linear_model import LogisticRegression
 
-from siteproof.average import kish_ess
-from siteproof.errors import SiteproofError
-from siteproof.recovery import (
+from siteproof.blind.average import kish_ess
+from siteproof.core.errors import SiteproofError
+from siteproof.unmask.recovery import (
     calibration_bins,
     calibration_line,
     recover_propensity,

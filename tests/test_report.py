@@ -16,10 +16,10 @@ import pandas as pd
 import pytest
 
 from conftest import SMALL_RATES, fast_config, small_trial
-from siteproof import report
-from siteproof.claims import write_claims
-from siteproof.errors import SiteproofError
-from siteproof.outputs import atomic_write_json, to_json_text
+from siteproof.reporting import report
+from siteproof.blind.claims import write_claims
+from siteproof.core.errors import SiteproofError
+from siteproof.core.outputs import atomic_write_json, to_json_text
 
 SECTION_IDS = ["study", "overlap", "average-effect", "sites", "heterogeneity", "rules", "transport", "methods"]
 MAX_BYTES = 3 * 1024 * 1024  # issue 5: the demo's report is under 3 MB
@@ -38,9 +38,9 @@ class SmallRun(NamedTuple):
 def small_run() -> SmallRun:
     """One small real run (n = 1500, fast learners, three CATE models besides the constant), computed once per
     test session (the browser test reuses it)."""
-    from siteproof.blind import run_blind
-    from siteproof.study import StudySpec, load_study
-    from siteproof.unmask import run_unmask
+    from siteproof.blind.analysis import run_blind
+    from siteproof.intake.study import StudySpec, load_study
+    from siteproof.unmask.scoring import run_unmask
 
     spec = StudySpec(data="trial.csv", outcome="score", treatment="treated", site="site", id="uid", cost="cost",
                      rates=SMALL_RATES)

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from siteproof import report
+from siteproof.reporting import report
 from test_report import SECTION_IDS, run_copy
 
 pytestmark = pytest.mark.browser

@@ -1,4 +1,4 @@
-"""Tests of siteproof.rules: simple rules, rule values and their SEs, and the exhaustive tree search."""
+"""Tests of siteproof.blind.rules: simple rules, rule values and their SEs, and the exhaustive tree search."""
 
 from __future__ import annotations
 
@@ -8,8 +8,8 @@ import math
 import numpy as np
 import pytest
 
-from siteproof.errors import SiteproofError
-from siteproof.rules import (
+from siteproof.core.errors import SiteproofError
+from siteproof.blind.rules import (
     RuleValue,
     TreeNode,
     TreeRule,
@@ -22,7 +22,7 @@ from siteproof.rules import (
     rule_value_by_group,
     threshold_rule,
 )
-from siteproof.estimates import Z95
+from siteproof.core.estimates import Z95
 
 # ───────────────────────────── simple rules ─────────────────────────────
 

@@ -19,8 +19,8 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from siteproof.errors import SiteproofError
-from siteproof.simulate import (
+from siteproof.core.errors import SiteproofError
+from siteproof.simulation.simulate import (
     Design,
     list_designs,
     load_design,
@@ -417,7 +417,7 @@ def _cross_fitted_aipw(trial, folds: int = 5, seed: int = 0) -> float:
     from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
     from sklearn.model_selection import KFold
 
-    from siteproof.scores import aipw_scores
+    from siteproof.core.scores import aipw_scores
 
     roles = trial.design.roles
     x = trial.data[list(roles.covariates)]

@@ -11,12 +11,12 @@ import pytest
 from scipy import stats
 
 from intake_cases import CASES, base_frame
-from siteproof.errors import SiteproofError, SiteproofWarning
-from siteproof.study import (
+from siteproof.core.errors import SiteproofError, SiteproofWarning
+from siteproof.intake.study import (
     StudySpec, fingerprint, load_spec_toml, load_study, parse_column_list, parse_rates, read_table,
 )
 
-pytestmark = pytest.mark.filterwarnings("ignore::siteproof.errors.SiteproofWarning")
+pytestmark = pytest.mark.filterwarnings("ignore::siteproof.core.errors.SiteproofWarning")
 
 
 def _load(frame: pd.DataFrame, **spec) -> "Study":  # noqa: F821 - forward reference for readers

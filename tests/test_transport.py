@@ -9,13 +9,13 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from conftest import SMALL_RATES, small_trial
-from siteproof.blind import BlindConfig, run_blind
-from siteproof.evaluation import rank_metric
-from siteproof.rules import budget_rule, rule_value, threshold_rule
-from siteproof.scores import arm_scores
-from siteproof.study import StudySpec, fingerprint, load_study
-from siteproof.transport import eligible_sites, leave_one_site_out, training_data
-from siteproof.unmask import run_unmask
+from siteproof.blind.analysis import BlindConfig, run_blind
+from siteproof.blind.evaluation import rank_metric
+from siteproof.blind.rules import budget_rule, rule_value, threshold_rule
+from siteproof.core.scores import arm_scores
+from siteproof.intake.study import StudySpec, fingerprint, load_study
+from siteproof.unmask.transport import eligible_sites, leave_one_site_out, training_data
+from siteproof.unmask.scoring import run_unmask
 
 SPEC = dict(data="trial.csv", outcome="score", treatment="treated", site="site", id="uid", cost="cost",
             rates=SMALL_RATES)

@@ -20,18 +20,18 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from conftest import SMALL_RATES, small_trial
-from siteproof.blind import BlindConfig, run_blind
-from siteproof.correspondence import DIFFERENT, EQUIVALENT
-from siteproof.design import site_table
-from siteproof.errors import SiteproofError
-from siteproof.evaluation import blp
-from siteproof.heterogeneity import random_effects
-from siteproof.outputs import to_json_text
-from siteproof.scores import aipw_scores
-from siteproof.simulate import simulate
-from siteproof.study import StudySpec, load_study
-from siteproof.screens import SCREEN_RULES, scorecard_renderables
-from siteproof.unmask import (
+from siteproof.blind.analysis import BlindConfig, run_blind
+from siteproof.unmask.correspondence import DIFFERENT, EQUIVALENT
+from siteproof.intake.sitetrials import site_table
+from siteproof.core.errors import SiteproofError
+from siteproof.blind.evaluation import blp
+from siteproof.unmask.heterogeneity import random_effects
+from siteproof.core.outputs import to_json_text
+from siteproof.core.scores import aipw_scores
+from siteproof.simulation.simulate import simulate
+from siteproof.intake.study import StudySpec, load_study
+from siteproof.reporting.screens import SCREEN_RULES, scorecard_renderables
+from siteproof.unmask.scoring import (
     MISMATCH_WHAT,
     any_different,
     blp_beta2_scores,
@@ -333,7 +333,7 @@ def star_frame() -> pd.DataFrame:
     return star[["rownames", "schidkn", "small", "total", "sex", "freelunk", "race", "totexpk"]]
 
 
-@pytest.mark.filterwarnings("ignore::siteproof.errors.SiteproofWarning")  # realized rates; one one-arm school
+@pytest.mark.filterwarnings("ignore::siteproof.core.errors.SiteproofWarning")  # realized rates; one one-arm school
 def test_star_design_estimates_match_an_independent_computation():
     frame = star_frame()
     spec = dict(data="star.csv", outcome="total", treatment="small", site="schidkn", id="rownames")

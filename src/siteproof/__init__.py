@@ -6,7 +6,7 @@ The public Python API mirrors the command line:
 * intake — :func:`load_study` with a :class:`StudySpec`;
 * the blind analysis — :func:`run_blind` with a :class:`BlindConfig` → claims;
 * unmasking — :func:`run_unmask` → scorecard; :func:`run_pipeline` does intake + blind + unmask + report;
-* :func:`run_demo`, :func:`load_design` (and ``siteproof.simulate.simulate``), :func:`random_effects`, :func:`seal_benchmark`,
+* :func:`run_demo`, :func:`load_design` (and ``siteproof.simulation.simulate.simulate``), :func:`random_effects`, :func:`seal_benchmark`,
   :func:`grade_submissions`, :func:`write_report`, :func:`run_study`.
 
 Names are imported lazily so that ``import siteproof`` (and the command line) starts fast.
@@ -17,28 +17,28 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-from .errors import SiteproofError, SiteproofWarning
-from .estimates import Estimate
+from .core.errors import SiteproofError, SiteproofWarning
+from .core.estimates import Estimate
 
 __version__ = "0.1.0"
 
 _LAZY = {
-    "StudySpec": "study",
-    "Study": "study",
-    "load_study": "study",
-    "BlindConfig": "blind",
-    "run_blind": "blind",
-    "run_unmask": "unmask",
-    "Scorecard": "unmask",
+    "StudySpec": "intake.study",
+    "Study": "intake.study",
+    "load_study": "intake.study",
+    "BlindConfig": "blind.analysis",
+    "run_blind": "blind.analysis",
+    "run_unmask": "unmask.scoring",
+    "Scorecard": "unmask.scoring",
     "run_pipeline": "pipeline",
     "run_demo": "pipeline",
-    "load_design": "simulate",
-    "random_effects": "heterogeneity",
-    "RandomEffectsResult": "heterogeneity",
-    "seal_benchmark": "holdout",
-    "grade_submissions": "holdout",
-    "write_report": "report",
-    "run_study": "montecarlo",
+    "load_design": "simulation.simulate",
+    "random_effects": "unmask.heterogeneity",
+    "RandomEffectsResult": "unmask.heterogeneity",
+    "seal_benchmark": "benchmark.holdout",
+    "grade_submissions": "benchmark.holdout",
+    "write_report": "reporting.report",
+    "run_study": "simulation.montecarlo",
 }
 
 __all__ = ["Estimate", "SiteproofError", "SiteproofWarning", "__version__", *sorted(_LAZY)]

@@ -23,7 +23,7 @@ try:  # typer ≥ 0.20 carries its own copy of click
 except ImportError:  # pragma: no cover - older typer uses the click package
     import click
 
-from .errors import SiteproofError, SiteproofWarning
+from .core.errors import SiteproofError, SiteproofWarning
 
 app = typer.Typer(
     name="siteproof",
@@ -61,8 +61,8 @@ class DataFlags:
     site_derived: Optional[list[str]] = None
 
     def to_spec(self):
-        """Build the :class:`~siteproof.study.StudySpec` from a study file and/or flags (flags win)."""
-        from .study import StudySpec, load_spec_toml, parse_rates
+        """Build the :class:`~siteproof.intake.study.StudySpec` from a study file and/or flags (flags win)."""
+        from .intake.study import StudySpec, load_spec_toml, parse_rates
 
         given = {
             "data": self.data, "outcome": self.outcome, "treatment": self.treatment, "site": self.site,
@@ -159,21 +159,21 @@ FailOnOpt = Annotated[Optional[str], typer.Option("--fail-on", help="Exit 1 when
 
 
 def _blind_config(seed: int, folds: int, models: str):
-    from .blind import BlindConfig
+    from .blind.analysis import BlindConfig
 
     return BlindConfig(seed=seed, folds=folds, models=tuple(_split(models) or ()))
 
 
 def _fit_progress(config):
-    from .blind import count_fits
-    from .console import progress_bar
+    from .blind.analysis import count_fits
+    from .core.console import progress_bar
 
     return progress_bar("fitting models", count_fits(config))
 
 
 def _print_scorecard(scorecard, out_dir: Path) -> None:
-    from .console import console
-    from .screens import scorecard_renderables
+    from .core.console import console
+    from .reporting.screens import scorecard_renderables
 
     for item in scorecard_renderables(scorecard):
         console.print(item)
@@ -183,7 +183,7 @@ def _print_scorecard(scorecard, out_dir: Path) -> None:
 
 
 def _exit_for(scorecard, fail_on: Optional[str]) -> None:
-    from .unmask import any_different
+    from .unmask.scoring import any_different
 
     if fail_on is None:
         return
@@ -202,8 +202,8 @@ def demo(
     force: ForceOpt = False,
 ) -> None:
     """Run the whole job on the shipped library-coaching demo and on its hidden-branch-effect variant."""
-    from .blind import BlindConfig
-    from .console import console
+    from .blind.analysis import BlindConfig
+    from .core.console import console
     from .pipeline import DEMO_SEED, run_demo
 
     config = BlindConfig(seed=DEMO_SEED)
@@ -223,9 +223,9 @@ def simulate(
     truth: Annotated[Optional[Path], typer.Option("--truth", help="Also write each unit's true effect here.")] = None,
 ) -> None:
     """Simulate a pooled multi-site trial with known truth from a synthetic_sites design."""
-    from .console import console
-    from .simulate import simulate as simulate_trial
-    from .simulate import write_simulation
+    from .core.console import console
+    from .simulation.simulate import simulate as simulate_trial
+    from .simulation.simulate import write_simulation
 
     trial = simulate_trial(design, n=n, seed=seed)
     write_simulation(trial, out, truth=truth)
@@ -243,9 +243,9 @@ def blind(
     force: ForceOpt = False,
 ) -> None:
     """Blind analysis (site hidden): propensities, average and heterogeneous effects, rules → claims.json."""
-    from .console import console
+    from .core.console import console
     from .pipeline import blind_stage
-    from .screens import claims_renderables
+    from .reporting.screens import claims_renderables
 
     spec = flags.to_spec()
     config = _blind_config(spec.seed, folds, models)
@@ -307,8 +307,8 @@ def report(
     run_dir: Annotated[Path, typer.Argument(help="A folder written by `siteproof run` or `unmask`.")],
 ) -> None:
     """Rewrite report.html, report.md and figures/ from a run folder's claims.json and scorecard.json."""
-    from .console import console
-    from .report import report_from_folder
+    from .core.console import console
+    from .reporting.report import report_from_folder
 
     paths = report_from_folder(run_dir)
     console.print(f"report: {paths['html']}")
@@ -323,8 +323,8 @@ def seal(
     force: ForceOpt = False,
 ) -> None:
     """Seal a holdout benchmark: leak audit, then public data for students and a key for the teacher."""
-    from .console import console
-    from .holdout import seal_benchmark
+    from .core.console import console
+    from .benchmark.holdout import seal_benchmark
 
     result = seal_benchmark(flags.to_spec(), out, holdout_share=holdout_share, force=force)
     console.print(f"sealed {result.n:,} units ({result.n_graded:,} graded); "
@@ -342,8 +342,8 @@ def grade(
     force: ForceOpt = False,
 ) -> None:
     """Grade submissions against a sealed key into a leaderboard (CSV, JSON, HTML)."""
-    from .console import console
-    from .holdout import grade_submissions, leaderboard_table, write_leaderboard
+    from .core.console import console
+    from .benchmark.holdout import grade_submissions, leaderboard_table, write_leaderboard
 
     board = grade_submissions(key, submissions, rank_by=rank_by, reveal=reveal)
     write_leaderboard(board, out, force=force)
@@ -362,8 +362,8 @@ def study(
     seed: Annotated[int, typer.Option("--seed", help="Study seed (same seed, same replicates.csv).")] = 0,
 ) -> None:
     """Monte Carlo design study: simulate, run blind + unmask, record bias, coverage and verdicts; resumable."""
-    from .console import console, progress_bar
-    from .montecarlo import run_study
+    from .core.console import console, progress_bar
+    from .simulation.montecarlo import run_study
 
     result = run_study(design, replicates, out, n=n, workers=workers, scheduler=scheduler, seed=seed,
                        progress=progress_bar)

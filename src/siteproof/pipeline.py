@@ -2,7 +2,7 @@
 
 Each stage is a function of the Python API; the CLI verbs ``blind``, ``unmask``, ``run`` and ``demo`` are thin
 shells over the functions here. Outputs are staged in a scratch folder and published only when the whole
-stage succeeded (:class:`~siteproof.outputs.StagedOutput`), so an error never leaves partial results.
+stage succeeded (:class:`~siteproof.core.outputs.StagedOutput`), so an error never leaves partial results.
 """
 
 from __future__ import annotations
@@ -11,13 +11,13 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
-from .blind import BlindConfig, Claims, run_blind
-from .claims import read_claims, write_claims
-from .outputs import StagedOutput, atomic_write_json, atomic_write_text, check_out_dir
-from .report import write_report
-from .simulate import simulate, write_simulation
-from .study import Study, StudySpec, load_study
-from .unmask import Scorecard, run_unmask
+from .blind.analysis import BlindConfig, Claims, run_blind
+from .blind.claims import read_claims, write_claims
+from .core.outputs import StagedOutput, atomic_write_json, atomic_write_text, check_out_dir
+from .reporting.report import write_report
+from .simulation.simulate import simulate, write_simulation
+from .intake.study import Study, StudySpec, load_study
+from .unmask.scoring import Scorecard, run_unmask
 
 Tick = Callable[[str], None]
 DEMO_SEED = 20261202

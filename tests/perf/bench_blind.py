@@ -7,7 +7,7 @@ prints, for the given n and p:
 
 * the wall time of a minimal hand-written cross-fitted AIPW with scikit-learn's default histogram gradient
   boosting (4 nuisances × 5 folds) — the baseline;
-* the wall time of `siteproof.blind.run_blind` with default settings, its ratio to the baseline, the time spent
+* the wall time of `siteproof.blind.analysis.run_blind` with default settings, its ratio to the baseline, the time spent
   inside scikit-learn ``fit``/``predict``/``predict_proba`` calls (model time) and the share outside them;
 * peak RSS of each.
 """
@@ -87,8 +87,8 @@ def run_baseline(n: int, p: int) -> dict:
 def run_siteproof(n: int, p: int) -> dict:
     import pandas as pd
 
-    from siteproof.blind import run_blind
-    from siteproof.study import StudySpec, load_study
+    from siteproof.blind.analysis import run_blind
+    from siteproof.intake.study import StudySpec, load_study
 
     totals = {"model": 0.0}
     _instrument_sklearn(totals)

@@ -52,7 +52,7 @@ def dask_throughput(workers: int, n: int, replicates: int) -> float:
     """Replicates per minute of a warmed-up LocalCluster with ``workers`` single-threaded workers."""
     from dask.distributed import Client, LocalCluster
 
-    from siteproof.montecarlo import run_study
+    from siteproof.simulation.montecarlo import run_study
 
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster, \
             Client(cluster) as client:
@@ -69,7 +69,7 @@ def dask_throughput(workers: int, n: int, replicates: int) -> float:
 
 
 def _warm_up() -> int:
-    import siteproof.montecarlo  # noqa: F401  (import cost paid before the clock starts)
+    import siteproof.simulation.montecarlo  # noqa: F401  (import cost paid before the clock starts)
 
     return os.getpid()
 

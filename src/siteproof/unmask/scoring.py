@@ -30,8 +30,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from . import __version__
-from .blind import BlindConfig
+from .. import __version__
+from ..blind.analysis import BlindConfig
 from .correspondence import (
     DIFFERENT,
     EQUIVALENT,
@@ -43,15 +43,15 @@ from .correspondence import (
     paired_difference,
     percent_bias_reduction,
 )
-from .design import DesignATE, design_ate, naive_ate, site_table
-from .errors import SiteproofError
-from .estimates import Estimate
-from .evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
+from ..intake.sitetrials import DesignATE, design_ate, naive_ate, site_table
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate
+from ..blind.evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
 from .heterogeneity import RandomEffectsResult, random_effects
 from .recovery import PropensityRecovery, recover_propensity
-from .rules import RuleValue, rule_value, rule_value_by_group
-from .scores import arm_scores
-from .study import Study
+from ..blind.rules import RuleValue, rule_value, rule_value_by_group
+from ..core.scores import arm_scores
+from ..intake.study import Study
 from .transport import TransportResult, leave_one_site_out
 
 SCHEMA = "siteproof/scorecard"

@@ -39,8 +39,8 @@ import numpy as np
 import pandas as pd
 from pandas.api import types as ptypes
 
-from .design import MIN_PER_ARM, natural_key, rate_test, site_order
-from .errors import SiteproofError, warn
+from .sitetrials import MIN_PER_ARM, natural_key, rate_test, site_order
+from ..core.errors import SiteproofError, warn
 
 if sys.version_info >= (3, 11):
     import tomllib

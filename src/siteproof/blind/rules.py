@@ -11,7 +11,7 @@ Rules
 
 Values
 ------
-With doubly robust arm scores Γ₀, Γ₁ (Robins, Rotnitzky & Zhao 1994; ``siteproof.scores.arm_scores``) and a
+With doubly robust arm scores Γ₀, Γ₁ (Robins, Rotnitzky & Zhao 1994; ``siteproof.core.scores.arm_scores``) and a
 per-unit cost c (0 if absent), the value of a rule π(x) ∈ {0, 1} is the mean of
 
     ψ_i = π_i·(Γ₁_i − c_i) + (1 − π_i)·Γ₀_i,                    V̂(π) = mean(ψ),  SE = sd(ψ)/√n,
@@ -36,8 +36,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .errors import SiteproofError
-from .estimates import Estimate
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate
 
 DEFAULT_BUDGETS = (0.1, 0.2, 0.3, 0.4, 0.5)
 DEFAULT_MIN_LEAF_SHARE = 0.05

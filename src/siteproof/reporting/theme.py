@@ -161,7 +161,7 @@ def page_head(title: str, extra_css: str = "") -> str:
     generator, escaped title and the inline stylesheet (plus ``extra_css``); nothing is fetched."""
     from html import escape
 
-    from . import __version__
+    from .. import __version__
 
     return f"""<!DOCTYPE html>
 <html lang="en">

@@ -40,7 +40,7 @@ import pandas as pd
 from sklearn.model_selection import KFold
 from sklearn.tree import DecisionTreeClassifier
 
-from .errors import SiteproofError
+from ..core.errors import SiteproofError
 
 LIFT_THRESHOLD = 0.5
 SINGLED_OUT_PRECISION_LIFT = 0.8

@@ -1,6 +1,6 @@
 """Average-effect estimators with their per-unit scores, and the overlap and balance diagnostics.
 
-Every estimator returns :class:`siteproof.estimates.Estimate` with ``scores`` ψ_i whose mean is the estimate
+Every estimator returns :class:`siteproof.core.estimates.Estimate` with ``scores`` ψ_i whose mean is the estimate
 (influence-function form), so that unmasking can compare it with a design-based estimate on the same units
 through mean(ψ_blind − ψ_design) (design.md point 4).  Standard errors:
 
@@ -22,9 +22,9 @@ import numpy as np
 import pandas as pd
 from scipy.linalg import cho_solve, solve_triangular
 
-from .errors import SiteproofError
-from .estimates import Estimate
-from .scores import aipw_scores
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate
+from ..core.scores import aipw_scores
 
 OVERLAP_ESTIMAND = "ATO (overlap-weighted population)"
 SMD_THRESHOLD = 0.1
@@ -100,7 +100,7 @@ def aipw(y: np.ndarray, w: np.ndarray, e: np.ndarray, mu0: np.ndarray, mu1: np.n
     """Cross-fitted AIPW (Robins, Rotnitzky & Zhao 1994; Chernozhukov et al. 2018): τ̂ = mean(Γ), SE sd(Γ)/√n.
 
     Γ_i = μ̂₁(x_i) − μ̂₀(x_i) + W_i (Y_i − μ̂₁(x_i))/e_i − (1 − W_i)(Y_i − μ̂₀(x_i))/(1 − e_i),
-    computed by :func:`siteproof.scores.aipw_scores`.
+    computed by :func:`siteproof.core.scores.aipw_scores`.
     """
     y, w = _check_yw(y, w)
     e = _check_e(e, y.size)

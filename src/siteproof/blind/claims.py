@@ -12,8 +12,8 @@ from typing import Any
 
 import pandas as pd
 
-from .errors import SiteproofError
-from .outputs import atomic_write_bytes, atomic_write_json
+from ..core.errors import SiteproofError
+from ..core.outputs import atomic_write_bytes, atomic_write_json
 
 CLAIMS_FILE = "claims.json"
 UNITS_FILE = "units.parquet"

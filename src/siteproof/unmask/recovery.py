@@ -34,9 +34,9 @@ from sklearn.base import ClassifierMixin, clone
 from sklearn.ensemble import RandomForestClassifier
 from sklearn.model_selection import KFold, StratifiedKFold, cross_val_predict
 
-from .errors import SiteproofError
-from .average import kish_ess
-from .estimates import Estimate, normal_ci
+from ..core.errors import SiteproofError
+from ..blind.average import kish_ess
+from ..core.estimates import Estimate, normal_ci
 
 RMSE_CAVEAT = (
     "ê targets the mixture e(x) = E[e_S | X = x], not the site rate e_S: even a perfect ê keeps an RMSE of "

@@ -26,9 +26,9 @@ from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostin
 from sklearn.pipeline import Pipeline
 from sklearn.utils.validation import has_fit_parameter
 
-from .errors import SiteproofError
-from .learners import ConstantModel, fit_model, predict_model
-from .scores import aipw_scores
+from ..core.errors import SiteproofError
+from ..core.learners import ConstantModel, fit_model, predict_model
+from ..core.scores import aipw_scores
 
 CATE_KEYS = ("constant", "s", "t", "x", "r", "dr")
 

@@ -1,7 +1,7 @@
 """Holdout benchmarks: seal a multi-site trial into a public exam file and a sealed key, grade submissions.
 
 **Seal** (:func:`seal_benchmark`). The raw table is first put through the leak audit
-(:mod:`siteproof.leakaudit`); a flagged column stops sealing unless it is kept (acknowledged) or dropped. The
+(:mod:`siteproof.benchmark.leakaudit`); a flagged column stops sealing unless it is kept (acknowledged) or dropped. The
 usable units of the cells that have a design-based truth (≥ 2 units in each arm) are shuffled and given random
 tokens. ``public/`` gets the data without site, stratum or id (outcome, treatment as 0/1, the covariates as
 they were, the cost), a task sheet and submission templates; ``key/`` gets token → site and known rate, the
@@ -54,18 +54,18 @@ import pandas as pd
 from rich.table import Table
 from sklearn.dummy import DummyClassifier, DummyRegressor
 
-from . import __version__
-from .design import DesignATE, design_ate, natural_key, site_table
-from .errors import SiteproofError, warn
-from .estimates import Z95, Estimate, normal_ci
-from .evaluation import blp, half_samples, rank_metric
+from .. import __version__
+from ..intake.sitetrials import DesignATE, design_ate, natural_key, site_table
+from ..core.errors import SiteproofError, warn
+from ..core.estimates import Z95, Estimate, normal_ci
+from ..blind.evaluation import blp, half_samples, rank_metric
 from .leakaudit import LeakAudit, audit_columns, require_no_leaks
-from .nuisance import cross_fit_nuisances, make_folds
-from .outputs import StagedOutput, atomic_write_bytes, atomic_write_json, atomic_write_text, to_json_text
-from .rules import rule_value
-from .scores import arm_scores
-from .study import Study, StudySpec, load_study, read_table
-from .theme import page_head
+from ..blind.nuisance import cross_fit_nuisances, make_folds
+from ..core.outputs import StagedOutput, atomic_write_bytes, atomic_write_json, atomic_write_text, to_json_text
+from ..blind.rules import rule_value
+from ..core.scores import arm_scores
+from ..intake.study import Study, StudySpec, load_study, read_table
+from ..reporting.theme import page_head
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -165,7 +165,7 @@ def seal_benchmark(
     ``spec.keep_columns`` acknowledges flagged columns, ``spec.drop_columns`` and ``spec.site_derived`` leave
     columns out; ``spec.seed`` drives every random step (audit folds, shuffle, tokens, holdout split, outcome
     models), so the same seed writes byte-identical files. ``learners`` is passed to
-    :func:`~siteproof.nuisance.cross_fit_nuisances` for the key-side outcome models.
+    :func:`~siteproof.blind.nuisance.cross_fit_nuisances` for the key-side outcome models.
     """
     _check_holdout_share(holdout_share)
     out = Path(out_dir)

@@ -49,8 +49,8 @@ import numpy as np
 import pandas as pd
 from scipy import special, stats
 
-from .errors import SiteproofError
-from .outputs import atomic_write_bytes
+from ..core.errors import SiteproofError
+from ..core.outputs import atomic_write_bytes
 
 if sys.version_info >= (3, 11):
     import tomllib

@@ -12,8 +12,8 @@ from rich import box
 from rich.table import Table
 from rich.text import Text
 
-from .correspondence import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, Comparison
-from .unmask import Scorecard
+from ..unmask.correspondence import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, Comparison
+from ..unmask.scoring import Scorecard
 
 SCREEN_RULES = (".threshold", ".top20", "tree")
 

@@ -28,8 +28,8 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from .errors import SiteproofError
-from .learners import fit_model, predict_model
+from ..core.errors import SiteproofError
+from ..core.learners import fit_model, predict_model
 
 NUISANCE_NAMES = ("propensity", "mu0", "mu1", "m")
 _PROB_FLOOR = 1e-15
@@ -197,7 +197,7 @@ def fit_predict(
 
     ``kind="classifier"`` returns P(class 1) (a training set holding a single class predicts that class,
     0 or 1, since no classifier can be fitted); ``kind="regressor"`` returns ``predict``.  ``sample_weight``
-    is passed to ``fit`` (to the last step of a Pipeline).  See :mod:`siteproof.learners`.
+    is passed to ``fit`` (to the last step of a Pipeline).  See :mod:`siteproof.core.learners`.
     """
     if (kind == "classifier") != bool(is_classifier(estimator)):
         raise SiteproofError(

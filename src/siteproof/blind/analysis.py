@@ -1,6 +1,6 @@
 """The blind analysis: what a careful observational analyst concludes without ever seeing the site labels.
 
-:func:`run_blind` takes a :class:`~siteproof.study.BlindData` (which has no site field, so blindness holds by
+:func:`run_blind` takes a :class:`~siteproof.intake.study.BlindData` (which has no site field, so blindness holds by
 construction) and runs, in order:
 
 1. K-fold cross-fitting of the nuisances ê(x), μ̂₀(x), μ̂₁(x), m̂(x) (``nuisance``);
@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 from threadpoolctl import threadpool_limits
 
-from . import __version__
+from .. import __version__
 from .average import (
     aipw,
     balance_table,
@@ -34,12 +34,12 @@ from .average import (
     regression_adjusted,
 )
 from .effects import CATE_KEYS, CateFit, fit_cate
-from .errors import SiteproofError
+from ..core.errors import SiteproofError
 from .evaluation import blp, cost_curve, gates, r_loss_comparison, rank_metric
 from .nuisance import Nuisances, cross_fit_nuisances, make_folds
 from .rules import TreeRule, budget_rule, cross_fitted_tree, rule_value, threshold_rule
-from .scores import arm_scores
-from .study import BlindData
+from ..core.scores import arm_scores
+from ..intake.study import BlindData
 
 CLAIMS_SCHEMA = "siteproof/claims"
 CLAIMS_VERSION = 1

@@ -26,10 +26,11 @@ import pandas as pd
 from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
-from . import __version__, theme
-from .correspondence import VERDICTS
-from .figures import new_figure, render, styled
-from .outputs import atomic_write_text
+from .. import __version__
+from ..reporting import theme
+from ..unmask.correspondence import VERDICTS
+from ..reporting.figures import new_figure, render, styled
+from ..core.outputs import atomic_write_text
 
 Z95 = 1.959963984540054
 NOMINAL = 0.95

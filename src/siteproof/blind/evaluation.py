@@ -21,8 +21,8 @@ from typing import Any, Iterator
 import numpy as np
 from scipy import stats
 
-from .errors import SiteproofError
-from .estimates import Z95, Estimate
+from ..core.errors import SiteproofError
+from ..core.estimates import Z95, Estimate
 
 RANK_KINDS = ("autoc", "qini")
 _CHUNK_ELEMENTS = 1 << 22  # units × draws held in memory at once by the half-sample bootstrap

@@ -22,11 +22,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Sequence
 
-from . import __version__, figures, theme
-from .claims import read_claims
-from .errors import SiteproofError
+from .. import __version__
+from . import figures
+from . import theme
+from ..blind.claims import read_claims
+from ..core.errors import SiteproofError
 from .figures import Curve, Interval, Rendered
-from .outputs import atomic_write_bytes, atomic_write_text
+from ..core.outputs import atomic_write_bytes, atomic_write_text
 
 REPORT_HTML = "report.html"
 REPORT_MD = "report.md"

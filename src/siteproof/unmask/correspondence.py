@@ -28,8 +28,8 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import stats
 
-from .errors import SiteproofError
-from .estimates import Estimate, normal_ci
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate, normal_ci
 
 EQUIVALENT = "equivalent"
 DIFFERENT = "different"

@@ -34,14 +34,14 @@ from typing import Any, Callable
 import numpy as np
 import pandas as pd
 
-from .blind import BlindConfig, run_blind
-from .design import site_order
-from .errors import SiteproofError
-from .estimates import Estimate
-from .evaluation import rank_metric
-from .rules import RuleValue, budget_rule, rule_value, threshold_rule
-from .scores import arm_scores
-from .study import BlindData, fingerprint
+from ..blind.analysis import BlindConfig, run_blind
+from ..intake.sitetrials import site_order
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate
+from ..blind.evaluation import rank_metric
+from ..blind.rules import RuleValue, budget_rule, rule_value, threshold_rule
+from ..core.scores import arm_scores
+from ..intake.study import BlindData, fingerprint
 
 MIN_SITE_UNITS = 50
 MIN_PER_ARM = 2

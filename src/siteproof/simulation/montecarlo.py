@@ -7,7 +7,7 @@ A *study* draws R independent replicates from a synthetic_sites design (``simula
    for the simulation, the blind analysis and the unmask step;
 2. it simulates n units, loads them as a study with the design's declared rates (the cost column is left
    out, so rules rank by effect alone and their gains are in outcome units), runs the blind analysis with
-   the given :class:`~siteproof.blind.BlindConfig` (learners included) and unmasks the claims;
+   the given :class:`~siteproof.blind.analysis.BlindConfig` (learners included) and unmasks the claims;
 3. it records one row per ATE estimator, per CATE model and per learned rule (:data:`COLUMNS`):
 
    * **ATE estimators** (``kind = "ate"``; plus the design-based estimator of unmask as ``name = "design"``):
@@ -64,15 +64,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .blind import BlindConfig, run_blind
-from .correspondence import VERDICTS
-from .errors import SiteproofError, SiteproofWarning
-from .evaluation import rank_metric
-from .outputs import atomic_write_json, atomic_write_text, check_out_dir
+from .. import __version__
+from ..blind.analysis import BlindConfig, run_blind
+from ..unmask.correspondence import VERDICTS
+from ..core.errors import SiteproofError, SiteproofWarning
+from ..blind.evaluation import rank_metric
+from ..core.outputs import atomic_write_json, atomic_write_text, check_out_dir
 from .simulate import MIN_N, Design, SimulatedTrial, load_design, population_ate, simulate
-from .study import Study, StudySpec, load_study
-from .unmask import Scorecard, claim_verdicts, run_unmask
+from ..intake.study import Study, StudySpec, load_study
+from ..unmask.scoring import Scorecard, claim_verdicts, run_unmask
 
 SCHEMA = "siteproof/montecarlo-study"
 VERSION = 1
@@ -219,7 +219,7 @@ def _cate_rows(record: dict[str, Any], units: pd.DataFrame, card: Scorecard, tau
 def true_rank_metric(tau_hat: np.ndarray, tau: np.ndarray, kind: str = "autoc") -> float:
     """AUTOC (or Qini) of the ranking by τ̂ with the true effects τ_i as the per-unit scores.
 
-    Uses :func:`siteproof.evaluation.rank_metric` for the statistic; only its point value is used (two
+    Uses :func:`siteproof.blind.evaluation.rank_metric` for the statistic; only its point value is used (two
     half-samples are drawn because the function always computes an SE).
     """
     return float(rank_metric(tau_hat, tau, kind=kind, n_boot=2, seed=0).estimate_of(0).estimate)
@@ -545,7 +545,7 @@ def run_study(
     ``scheduler = "local"``; ``scheduler``: None (local processes), ``"local"`` or a Dask scheduler address;
     ``seed``: the study seed (same seed ⇒ identical replicates.csv); ``config``: the blind settings and
     learners (default ``BlindConfig()``; tests pass fast learners); ``site_learner``: unmask's site classifier;
-    ``progress``: a factory like :func:`siteproof.console.progress_bar` — called as
+    ``progress``: a factory like :func:`siteproof.core.console.progress_bar` — called as
     ``progress("replicates", total)`` and used as a context manager yielding ``tick(label)``.
     """
     _check_arguments(replicates, n, workers, seed, scheduler)
@@ -579,7 +579,7 @@ def run_study(
     summary = summarize(frame)
     atomic_write_text(out / "summary.csv", summary.to_csv(index=False, lineterminator="\n"))
     if report:
-        from .studyreport import write_study_report
+        from .experimentpage import write_study_report
 
         write_study_report(out, summary, json.loads((out / "study.json").read_text(encoding="utf-8")))
     return StudyResult(out, design.name, n, seed, replicates, len(tasks), replicates - len(tasks),

@@ -33,9 +33,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .errors import SiteproofError
-from .estimates import Estimate, mean_and_se, normal_ci
-from .scores import ipw_scores
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate, mean_and_se, normal_ci
+from ..core.scores import ipw_scores
 
 if TYPE_CHECKING:  # pragma: no cover - typing only; study imports design, not the other way round
     from .study import Study

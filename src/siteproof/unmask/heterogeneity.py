@@ -34,8 +34,8 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import optimize, stats
 
-from .errors import SiteproofError
-from .estimates import normal_ci
+from ..core.errors import SiteproofError
+from ..core.estimates import normal_ci
 
 METHODS = ("reml", "dl")
 

@@ -1,0 +1,1 @@
+"""The teaching benchmark: leak audit, sealing, grading."""

@@ -1,0 +1,1 @@
+"""Primitives every stage uses: the error type, estimates, per-unit scores, learners, atomic outputs, console."""

@@ -1,0 +1,1 @@
+"""Presentation: terminal screens, HTML/Markdown report, figures, palette."""

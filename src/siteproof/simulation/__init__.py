@@ -1,0 +1,1 @@
+"""Simulation with known truth: scenario files, drawing, Monte Carlo experiments."""

@@ -1,0 +1,1 @@
+"""Unmasking: design-based truths, paired verdicts, propensity recovery, site heterogeneity, transport."""
