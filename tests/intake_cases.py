@@ -101,6 +101,18 @@ def damaged_parquet(folder: Path) -> IntakeCase:
     return _case(path, "error", "cannot read")
 
 
+def damaged_stata(folder: Path) -> IntakeCase:
+    path = folder / "data.dta"
+    path.write_bytes(b"<stata_dta><header> cut off here")
+    return _case(path, "error", "cannot read")
+
+
+def unknown_suffix(folder: Path) -> IntakeCase:
+    path = folder / "data.sqlite"
+    path.write_bytes(b"SQLite format 3\x00")
+    return _case(path, "error", "not a table format siteproof reads")
+
+
 def empty_file(folder: Path) -> IntakeCase:
     path = folder / "data.csv"
     path.write_bytes(b"")
@@ -245,8 +257,8 @@ def site_with_one_arm(folder: Path) -> IntakeCase:
 CASES: list[tuple[str, Callable[[Path], IntakeCase]]] = [
     (builder.__name__, builder)
     for builder in (
-        file_missing, path_is_folder, damaged_parquet, empty_file, header_only, not_utf8, unknown_encoding,
-        ragged_csv, repeated_header, unknown_covariate, unknown_outcome, site_column_missing,
+        file_missing, path_is_folder, damaged_parquet, damaged_stata, unknown_suffix, empty_file, header_only,
+        not_utf8, unknown_encoding, ragged_csv, repeated_header, unknown_covariate, unknown_outcome, site_column_missing,
         treatment_one_value, treatment_three_values, treatment_needs_treated_value, wrong_treated_value,
         non_numeric_outcome, all_units_in_one_arm, too_few_units, duplicate_ids, missing_site_values,
         rate_above_one, rate_zero, rate_for_unknown_site, rates_for_some_sites, undeclared_identifier,

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from conftest import fast_config, small_trial
-from siteproof.blind.analysis import run_blind
+from siteproof.blind.analysis import BlindConfig, run_blind
 from siteproof.core.errors import SiteproofError
 from siteproof.core.outputs import to_json_text
 from siteproof.intake.study import StudySpec, load_study
@@ -77,3 +77,32 @@ def test_aipw_recovers_the_true_ate_where_unconfoundedness_holds(reference):
 def test_unknown_model_key_is_a_user_error():
     with pytest.raises(SiteproofError, match="unknown effect model"):
         _claims(small_trial(n=300), models=("constant", "forest"))
+
+
+def test_a_study_is_reduced_to_its_blind_view(reference):
+    """run_blind(study) analyses study.blind: the same claims as passing the blind view itself."""
+    study = load_study(StudySpec(**SPEC), frame=small_trial())
+    claims = run_blind(study, fast_config())
+    assert _without_timings(claims.record) == _without_timings(reference.record)
+
+
+@pytest.mark.parametrize(
+    "settings, what",
+    [(dict(folds=1), "folds"), (dict(tree_bins=1), "tree_bins"), (dict(seed=-1), "seed"),
+     (dict(models=("constant", "t", "t")), "listed twice")],
+)
+def test_impossible_settings_are_refused_at_construction(settings, what):
+    with pytest.raises(SiteproofError, match=what) as info:
+        fast_config(**settings)
+    assert info.value.fix
+
+
+def test_rule_names_are_unique_for_any_budget_list():
+    """Budgets 0.12 and 0.125 used to share the name 'top12'; names now carry the budget in full."""
+    from siteproof.blind.claims import rule_name
+
+    names = [rule_name("t", "budget", q) for q in (0.1, 0.12, 0.125, 0.2, 0.3333)]
+    assert names == ["t.top10", "t.top12", "t.top12.5", "t.top20", "t.top33.33"]
+    assert rule_name("t", "threshold") == "t.threshold" and rule_name(None, "tree") == "tree"
+    with pytest.raises(SiteproofError):
+        BlindConfig(budgets=(0.2, 0.2))

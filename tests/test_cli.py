@@ -35,7 +35,7 @@ def _run(args: list[str], capsys) -> tuple[int, str, str]:
 
 @pytest.mark.parametrize("name,build", ERROR_CASES, ids=[name for name, _ in ERROR_CASES])
 def test_bad_input_gives_one_line_and_exit_2_and_no_outputs(name, build, tmp_path, capsys):
-    """Issue 2 item 7: every bad input → `error: <what> — <how to fix>`, exit 2, nothing in --out."""
+    """Every bad input → `error: <what> — <how to fix>`, exit 2, nothing in --out."""
     case = build(tmp_path)
     out = tmp_path / "out"
     code, _, err = _run(["run", *case.cli_args, "--out", str(out)], capsys)
@@ -75,6 +75,54 @@ def test_console_script_prints_no_traceback(tmp_path):
                              "--out", str(tmp_path / "o")], capture_output=True, text=True)
     assert result.returncode == 2
     assert result.stderr.count("\n") == 1 and result.stderr.startswith("error: ")
+
+
+def test_version_prints_the_package_version(capsys):
+    import siteproof
+
+    code, stdout, _ = _run(["--version"], capsys)
+    assert code == 0 and stdout.strip() == f"siteproof {siteproof.__version__}"
+
+
+def test_bare_command_prints_usage_not_an_error(capsys):
+    code, stdout, err = _run([], capsys)
+    assert code in (0, 2)
+    assert stdout.startswith("Usage: siteproof") and "Commands:" in stdout and "run" in stdout
+    assert "error:" not in err
+
+
+def _cli_in_subprocess(args: list[str]) -> subprocess.CompletedProcess:
+    """Run the CLI in a fresh interpreter and report whether scikit-learn or matplotlib got imported."""
+    code = ("import sys\nfrom siteproof.cli import main\nstatus = main(sys.argv[1:])\n"
+            "print(sorted(m for m in ('sklearn', 'matplotlib') if m in sys.modules))\nsys.exit(status)")
+    return subprocess.run([sys.executable, "-c", code, *args], capture_output=True, text=True)
+
+
+@pytest.mark.parametrize("kind", ["data", "study", "out"])
+def test_path_mistakes_are_caught_before_heavy_imports(kind, tmp_path):
+    """A missing data file, a missing study file and an --out under a file: one line, exit 2, no sklearn."""
+    afile = tmp_path / "trial.csv"
+    afile.write_text("y,w,s\n1,0,a\n")
+    args = {
+        "data": [str(tmp_path / "missing.csv"), "--out", str(tmp_path / "o")],
+        "study": ["--study", str(tmp_path / "missing.toml"), "--out", str(tmp_path / "o")],
+        "out": [str(afile), "--out", str(afile / "sub")],
+    }[kind]
+    result = _cli_in_subprocess(["run", *args, "--outcome", "y", "--treatment", "w", "--site", "s"])
+    assert result.returncode == 2
+    assert result.stderr.count("\n") == 1 and result.stderr.startswith("error: ") and " — " in result.stderr
+    assert "Traceback" not in result.stderr
+    assert {"data": "not found", "study": "study file", "out": "is a file"}[kind] in result.stderr
+    assert result.stdout.strip() == "[]"
+    assert not (tmp_path / "o").exists()
+
+
+def test_warning_handler_is_restored_after_a_command(capsys):
+    import warnings
+
+    before = warnings.showwarning
+    _run(["--version"], capsys)
+    assert warnings.showwarning is before
 
 
 def test_simulate_writes_data_and_truth(tmp_path, capsys):

@@ -137,7 +137,7 @@ def _coverage(reps: int, n: int, seed: int) -> float:
 
 
 def _coverage_bounds(reps: int) -> tuple[float, float]:
-    """99.9% binomial acceptance region for coverage 0.95 (scipy.stats.binom), inside issue 4's 90–98 %."""
+    """99.9% binomial acceptance region for coverage 0.95 (scipy.stats.binom), inside the 90–98 % band the coverage target allows."""
     lo = stats.binom.ppf(0.0005, reps, 0.95) / reps
     hi = stats.binom.ppf(0.9995, reps, 0.95) / reps
     return max(lo, 0.90), min(hi, 0.98)

@@ -19,7 +19,6 @@ from scipy import stats
 
 from siteproof.intake.sitetrials import (
     count_test, design_ate, difference_in_means, naive_ate, rate_test, site_order, site_table,
-    study_design_summary,
 )
 from siteproof.core.errors import SiteproofError
 from siteproof.core.outputs import to_json_text
@@ -91,11 +90,11 @@ def test_star_through_intake_matches_the_array_functions(star):
     spec = StudySpec(data="star", outcome="total", treatment="classk", treated_value="small.class",
                      site="schidkn", id="rownames")
     study = load_study(spec, frame=frame)
-    summary = study_design_summary(study)
+    via_intake = design_ate(study.blind.y, study.blind.w, study.site, study.stratum)
     direct = design_ate(star["total"], star["small"], star["schidkn"])
-    assert summary["design_ate"]["estimate"] == pytest.approx(direct.estimate.estimate, rel=1e-12)
-    assert summary["study"]["n_sites"] == 79 and summary["study"]["rates_source"] == "realized"
-    assert any("excluded from the design-based estimate" in text for text in summary["warnings"])
+    assert via_intake.estimate.estimate == pytest.approx(direct.estimate.estimate, rel=1e-12)
+    assert list(via_intake.excluded_sites) == list(direct.excluded_sites) and direct.excluded_sites
+    assert study.n_sites == 79 and study.rates_source == "realized"
 
 
 def test_rate_test_is_scipys_binomtest():
@@ -211,15 +210,17 @@ def test_site_order_is_natural():
     assert site_order(["10", "2", "b", "a", "1", "s10", "s2"]) == ["1", "2", "10", "a", "b", "s2", "s10"]
 
 
-def test_summary_is_json_ready_and_has_the_scorecard_fields():
+def test_declared_study_site_table_and_estimates_are_json_ready():
     y, w, site, rate = _toy()
     frame = pd.DataFrame({"y": y, "w": w, "site": site, "x": np.random.default_rng(1).normal(size=y.size)})
     study = load_study(StudySpec(data="-", outcome="y", treatment="w", site="site",
                                  rates={"s1": 0.3, "s2": 0.5, "s10": 0.7}), frame=frame)
-    summary = study_design_summary(study)
-    parsed = json.loads(to_json_text(summary))
+    assert study.rates_source == "declared" and study.n == y.size
+    blind = study.blind
+    sites = site_table(blind.y, blind.w, study.site, study.known_rate, study.known_rate, study.stratum)
     assert {"site", "n", "n_treated", "rate_declared", "rate_realized", "difference_in_means", "se",
-            "included"} <= set(parsed["sites"][0])
+            "included"} <= set(sites.columns)
+    assert list(sites["rate_declared"]) == [0.3, 0.5, 0.7]
+    parsed = json.loads(to_json_text({"design_ate": design_ate(blind.y, blind.w, study.site).to_dict(),
+                                      "naive_ate": naive_ate(blind.y, blind.w).to_dict()}))
     assert {"estimate", "se", "ci"} <= set(parsed["design_ate"]) & set(parsed["naive_ate"])
-    assert [row["rate_declared"] for row in parsed["sites"]] == [0.3, 0.5, 0.7]
-    assert parsed["study"]["rates_source"] == "declared" and parsed["study"]["n"] == y.size

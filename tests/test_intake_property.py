@@ -133,7 +133,9 @@ def test_damaged_trials_never_raise_anything_but_siteproof_error(data: tuple[pd.
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.binary(max_size=300), st.sampled_from(["data.csv", "data.parquet", "data.tsv", "data"]))
+@given(st.binary(max_size=300), st.sampled_from([
+    "data.csv", "data.parquet", "data.tsv", "data", "data.dta", "data.xpt", "data.sas7bdat", "data.sav", "data.feather",
+]))
 def test_random_files_never_raise_anything_but_siteproof_error(tmp_path_factory, payload: bytes, name: str) -> None:
     path = tmp_path_factory.mktemp("files") / name
     path.write_bytes(b"y,w,s\n" + payload if name.endswith("csv") else payload)

@@ -21,8 +21,8 @@ import pytest
 from conftest import fast_config
 from sklearn.ensemble import RandomForestClassifier
 
-from siteproof.simulation import montecarlo
 from siteproof.core.errors import SiteproofError
+from siteproof.simulation import montecarlo
 from siteproof.simulation.montecarlo import (
     COLUMNS,
     ReplicateResult,
@@ -30,9 +30,9 @@ from siteproof.simulation.montecarlo import (
     read_replicates,
     replicate_seeds,
     run_study,
-    summarize,
     true_rank_metric,
 )
+from siteproof.simulation.studysummary import summarize
 
 DESIGN, N, SEED = "covariate_allocation", 400, 5
 ROWS_PER_REPLICATE = 6 + 3 + 4  # 5 ATE estimators + design; constant, t, dr; t/dr × (threshold, top50)

@@ -11,12 +11,12 @@ from sklearn.neighbors import KNeighborsRegressor
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
 from siteproof.core.errors import SiteproofError
+from siteproof.core.learners import fit_model, predict_model
 from siteproof.blind.nuisance import (
     GcvRidge,
     Nuisances,
     cross_fit_nuisances,
     default_learners,
-    fit_predict,
     make_folds,
 )
 
@@ -202,14 +202,19 @@ def test_kind_mismatches_are_user_errors():
         cross_fit_nuisances(X, y, w, folds, binary_outcome=True)
 
 
-def test_fit_predict_probability_weights_and_single_class():
+def _fit_predict(est, X_train, y_train, X_pred, sample_weight=None):
+    return predict_model(fit_model(est, X_train, y_train, sample_weight=sample_weight), X_pred)
+
+
+def test_learner_fit_probability_weights_and_single_class():
+    """The fit/predict path every nuisance model goes through (siteproof.core.learners)."""
     rng = np.random.default_rng(8)
     X = rng.normal(size=(200, 2))
     t = (X[:, 0] > 0).astype(int)
-    prob = fit_predict(LogisticRegression(), X, t, X[:5], kind="classifier")
+    prob = _fit_predict(LogisticRegression(), X, t, X[:5])
     ref = LogisticRegression().fit(X, t).predict_proba(X[:5])[:, 1]
     np.testing.assert_allclose(prob, ref, rtol=1e-12)
-    assert np.array_equal(fit_predict(LogisticRegression(), X, np.ones(200), X[:3], kind="classifier"), np.ones(3))
+    assert np.array_equal(_fit_predict(LogisticRegression(), X, np.ones(200), X[:3]), np.ones(3))
     # sample weights reach the estimator, also inside a Pipeline (weighted least squares by hand)
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import StandardScaler
@@ -219,7 +224,7 @@ def test_fit_predict_probability_weights_and_single_class():
     Z = np.column_stack([np.ones(200), X])
     beta = np.linalg.solve(Z.T @ (Z * sw[:, None]), Z.T @ (sw * y))
     for est in (LinearRegression(), make_pipeline(StandardScaler(), LinearRegression())):
-        pred = fit_predict(est, X, y, X[:4], kind="regressor", sample_weight=sw)
+        pred = _fit_predict(est, X, y, X[:4], sample_weight=sw)
         np.testing.assert_allclose(pred, Z[:4] @ beta, rtol=1e-9)
 
 

@@ -9,15 +9,17 @@ import json
 import re
 import warnings
 from html.parser import HTMLParser
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import numpy as np
 import pandas as pd
 import pytest
 
 from conftest import SMALL_RATES, fast_config, small_trial
-from siteproof.reporting import report
-from siteproof.blind.claims import write_claims
+from siteproof.core.interpret import estimator_label
+from siteproof.reporting import formatting, report, sections_design, sections_effects, sections_rules
+from siteproof.reporting.context import RunView
+from siteproof.blind.claims import Claims, write_claims
 from siteproof.core.errors import SiteproofError
 from siteproof.core.outputs import atomic_write_json, to_json_text
 
@@ -32,6 +34,7 @@ class SmallRun(NamedTuple):
     raw_card: dict
     units: pd.DataFrame
     w: np.ndarray
+    scorecard: Any  # the Scorecard object the screens print
 
 
 @functools.lru_cache(maxsize=1)
@@ -48,9 +51,10 @@ def small_run() -> SmallRun:
         warnings.simplefilter("ignore")
         study = load_study(spec, frame=small_trial(n=1500))
         claims = run_blind(study.blind, fast_config(models=("constant", "t", "r", "dr")))
-        card = run_unmask(study, claims.record, claims.units, seed=3).to_dict()
+        scorecard = run_unmask(study, claims.record, claims.units, seed=3)
+    card = scorecard.to_dict()
     return SmallRun(json.loads(to_json_text(claims.record)), json.loads(to_json_text(card)), claims.record, card,
-                    claims.units, study.blind.w.astype(int))
+                    claims.units, study.blind.w.astype(int), scorecard)
 
 
 def run_copy() -> tuple[dict, dict]:
@@ -149,10 +153,10 @@ def test_html_is_self_contained_with_unique_ids(written):
 def test_average_effect_table_shows_the_scorecard_numbers_and_verdicts(written):
     out, _, _, card = written
     md = (out / "report.md").read_text(encoding="utf-8")
-    d = report._decimals(card["study"]["margin"])
+    d = formatting.effect_decimals(card["study"]["margin"])
     for row in card["ate"]:
         b, dif = row["blind"], row["difference"]
-        label = report.ESTIMATOR_LABELS[row["estimator"]]
+        label = estimator_label(row["estimator"])
         line = next(l for l in md.splitlines() if l.startswith(f"| {label} | "))
         assert f"{b['estimate']:.{d}f} [{b['ci'][0]:.{d}f}, {b['ci'][1]:.{d}f}]" in line
         assert f"{dif['estimate']:.{d}f} [{dif['ci'][0]:.{d}f}, {dif['ci'][1]:.{d}f}]" in line
@@ -171,7 +175,7 @@ def test_average_effect_table_shows_the_scorecard_numbers_and_verdicts(written):
 def test_study_and_sites_tables_match_the_scorecard(written):
     out, _, _, card = written
     md = (out / "report.md").read_text(encoding="utf-8")
-    d = report._decimals(card["study"]["margin"])
+    d = formatting.effect_decimals(card["study"]["margin"])
     for site in card["sites"]:
         rows = [l for l in md.splitlines() if l.startswith(f"| {site['site']} | {site['n']} |")]
         assert len(rows) == 2  # the rates table and the per-site estimates table
@@ -194,22 +198,22 @@ def test_average_reading_follows_the_verdict(verdict, phrase):
     claims, card = run_copy()
     aipw = next(r for r in card["ate"] if r["estimator"] == "aipw")
     aipw["verdict"] = verdict
-    section = report._average(report._Run(claims, card))
+    section = sections_effects.average_section(RunView(claims, card))
     first, second = section.reading
     assert phrase in first and first.rstrip(".").endswith(verdict)
-    d = report._decimals(card["study"]["margin"])
+    d = formatting.effect_decimals(card["study"]["margin"])
     assert f"{aipw['difference']['estimate']:.{d}f}" in first
     assert f"{len(card['ate'])} blind estimators" in second
 
 
 def test_overlap_reading_judges_the_calibration_slope():
     claims, card = run_copy()
-    run = report._Run(claims, card)
+    run = RunView(claims, card)
     slope = card["propensity"]["calibration_slope"]
     for ci, word in (([0.9, 1.1], "consistent with a calibrated"), ([0.3, 0.5], "too spread out"),
-                     ([1.3, 1.6], "too compressed")):
+                     ([1.3, 1.6], "too compressed"), ([1.02, 1.08], "counts as calibrated")):
         slope.update(estimate=sum(ci) / 2, ci=ci)
-        assert word in report._overlap_reading(run, claims["overlap"], card["propensity"])[1]
+        assert word in sections_design.overlap_reading(run, claims["overlap"], card["propensity"])[1]
 
 
 def test_absent_parts_say_not_run_and_draw_nothing():
@@ -263,7 +267,7 @@ def test_transport_section_lists_every_held_out_site():
                    "rules": {"r.threshold": gain, "tree": gain}, "seconds": 1.0} for s in card["sites"]],
         "skipped": [],
     }
-    section = report._transport(report._Run(claims, card))
+    section = sections_rules.transport_section(RunView(claims, card))
     md = section.markdown(7)
     for s in card["sites"]:
         assert f"| {s['site']} | r | {s['n']} | {1500 - s['n']} |" in md
@@ -273,7 +277,7 @@ def test_transport_section_lists_every_held_out_site():
 
 def test_report_from_folder_rewrites_the_same_report(written, tmp_path):
     out, _, claims, card = written
-    write_claims(claims, small_run().units, tmp_path)
+    write_claims(Claims.from_dict(claims, small_run().units), tmp_path)
     atomic_write_json(tmp_path / "scorecard.json", card)
     paths = report.report_from_folder(tmp_path)
     assert paths["html"].read_bytes() == (out / "report.html").read_bytes()  # same inputs, same bytes
@@ -297,7 +301,7 @@ def test_report_from_folder_errors_say_how_to_fix(tmp_path, written):
         report.report_from_folder(tmp_path)
     with pytest.raises(SiteproofError, match="not a folder"):
         report.report_from_folder(tmp_path / "missing")
-    write_claims(claims, small_run().units, tmp_path)
+    write_claims(Claims.from_dict(claims, small_run().units), tmp_path)
     with pytest.raises(SiteproofError, match="unmask"):
         report.report_from_folder(tmp_path)
     other = dict(card, study=dict(card["study"], fingerprint="0" * 64))
@@ -310,7 +314,7 @@ def test_report_from_folder_errors_say_how_to_fix(tmp_path, written):
 
 
 def test_number_formatting():
-    assert report._decimals(0.314) == 3 and report._decimals(2.0) == 2 and report._decimals(15.0) == 1
-    assert report.fmt(None) == "—" and report.fmt(float("nan")) == "—" and report.fmt(1.23456, 2) == "1.23"
-    assert report.fmt_p(0.0004) == "<0.001" and report.fmt_p(0.0421) == "0.042"
-    assert report.fmt_ci([0.1, None]) == "—" and report.fmt_ci([-0.5, 0.25], 2) == "[-0.50, 0.25]"
+    assert formatting.effect_decimals(0.314) == 3 and formatting.effect_decimals(2.0) == 2 and formatting.effect_decimals(15.0) == 1
+    assert formatting.fmt(None) == "—" and formatting.fmt(float("nan")) == "—" and formatting.fmt(1.23456, 2) == "1.23"
+    assert formatting.fmt_p(0.0004) == "<0.001" and formatting.fmt_p(0.0421) == "0.042"
+    assert formatting.fmt_ci([0.1, None]) == "—" and formatting.fmt_ci([-0.5, 0.25], 2) == "[-0.50, 0.25]"

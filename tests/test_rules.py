@@ -16,7 +16,6 @@ from siteproof.blind.rules import (
     _feature_bins,
     budget_rule,
     cross_fitted_tree,
-    effect_rules,
     fit_tree_rule,
     rule_value,
     rule_value_by_group,
@@ -58,11 +57,21 @@ def test_budget_rule_rejects_share_outside_unit_interval():
         budget_rule(np.zeros(3), 1.5)
 
 
-def test_effect_rules_names_and_shares():
+def test_threshold_and_budget_rules_treat_the_expected_shares():
+    # 20 evenly spaced τ̂ in [−1, 1]: exactly 10 are > 0; budget q treats round(q·n) units (by definition)
     tau = np.linspace(-1, 1, 20)
-    rules = effect_rules(tau, budgets=(0.1, 0.5))
-    assert list(rules) == ["threshold", "top10", "top50"]
-    assert [int(r.sum()) for r in rules.values()] == [10, 2, 10]
+    assert int(threshold_rule(tau).sum()) == 10
+    assert [int(budget_rule(tau, q).sum()) for q in (0.1, 0.5)] == [2, 10]
+    assert np.all(budget_rule(tau, 0.1)[-2:] == 1)  # the two largest τ̂
+
+
+def test_rule_inputs_are_checked():
+    with pytest.raises(SiteproofError, match="one-dimensional"):
+        threshold_rule(np.zeros((2, 2)))
+    with pytest.raises(SiteproofError, match="NaN or infinite"):
+        threshold_rule([0.0, np.nan])
+    with pytest.raises(SiteproofError, match=r"\[0, 1\]"):
+        rule_value([0.5, 2.0], [0.0, 0.0], [1.0, 1.0])
 
 
 # ───────────────────────────── rule values ─────────────────────────────

@@ -20,14 +20,8 @@ import pytest
 from scipy import stats
 
 from siteproof.core.errors import SiteproofError
-from siteproof.simulation.simulate import (
-    Design,
-    list_designs,
-    load_design,
-    population_ate,
-    simulate,
-    write_simulation,
-)
+from siteproof.simulation.scenario import Scenario
+from siteproof.simulation.simulate import list_designs, load_design, population_ate, simulate, write_simulation
 
 SHIPPED = {"demo", "hidden_branch", "null", "covariate_allocation", "extreme_rates", "many_small"}
 BIG = 20_000
@@ -56,7 +50,7 @@ def test_all_shipped_designs_are_package_resources_and_simulate():
     for name in SHIPPED:
         assert root.joinpath(f"{name}.toml").is_file()
         design = load_design(name)
-        assert isinstance(design, Design) and design.name == name
+        assert isinstance(design, Scenario) and design.name == name
         trial = simulate(design, n=300, seed=1)
         roles = design.roles
         assert list(trial.data.columns[:4]) == [roles.id, roles.site, roles.treatment, roles.outcome]

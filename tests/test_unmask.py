@@ -31,6 +31,7 @@ from siteproof.core.scores import aipw_scores
 from siteproof.simulation.simulate import simulate
 from siteproof.intake.study import StudySpec, load_study
 from siteproof.reporting.screens import SCREEN_RULES, scorecard_renderables
+from siteproof.unmask.scorecard import Scorecard
 from siteproof.unmask.scoring import (
     MISMATCH_WHAT,
     any_different,
@@ -62,8 +63,8 @@ def site_learner():
 
 def unmasked(frame: pd.DataFrame, config: BlindConfig, spec: dict | None = None, **unmask_kwargs):
     study = load_study(StudySpec(**(spec or dict(SPEC, rates=SMALL_RATES))), frame=frame)
-    claims = run_blind(study.blind, config)
-    card = run_unmask(study, claims.to_dict(), claims.units, site_learner=site_learner(), **unmask_kwargs)
+    claims = run_blind(study, config)
+    card = run_unmask(study, claims, site_learner=site_learner(), **unmask_kwargs)
     return study, claims, card
 
 
@@ -86,6 +87,15 @@ def test_claims_from_another_dataset_are_refused(reference):
     other = load_study(StudySpec(**dict(SPEC, rates=SMALL_RATES)), frame=small_trial(n=1200, seed=8))
     with pytest.raises(SiteproofError, match="another dataset"):
         run_unmask(other, claims.to_dict(), claims.units)
+
+
+def test_a_record_and_its_units_score_like_the_claims_object(reference):
+    """run_unmask takes the Claims object or its (record, units) pair; a record alone is refused."""
+    study, claims, card = reference
+    pair = run_unmask(study, claims.to_dict(), claims.units, site_learner=site_learner())
+    assert pair == card and Scorecard.from_dict(card.to_dict()) == pair
+    with pytest.raises(SiteproofError, match="per-unit table"):
+        run_unmask(study, claims.to_dict())
 
 
 # ------------------------------------------------------------------------------------- average effects

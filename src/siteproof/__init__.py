@@ -18,11 +18,11 @@ import importlib
 from typing import Any
 
 from .core.errors import SiteproofError, SiteproofWarning
-from .core.estimates import Estimate
 
 __version__ = "0.1.0"
 
 _LAZY = {
+    "Estimate": "core.estimates",
     "StudySpec": "intake.study",
     "Study": "intake.study",
     "load_study": "intake.study",
@@ -41,7 +41,7 @@ _LAZY = {
     "run_study": "simulation.montecarlo",
 }
 
-__all__ = ["Estimate", "SiteproofError", "SiteproofWarning", "__version__", *sorted(_LAZY)]
+__all__ = ["SiteproofError", "SiteproofWarning", "__version__", *sorted(_LAZY)]
 
 
 def __getattr__(name: str) -> Any:

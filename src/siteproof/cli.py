@@ -12,7 +12,7 @@ import inspect
 import sys
 import typing
 import warnings
-from dataclasses import dataclass, fields
+from dataclasses import fields
 from pathlib import Path
 from typing import Annotated, Any, Callable, Optional
 
@@ -23,7 +23,9 @@ try:  # typer ≥ 0.20 carries its own copy of click
 except ImportError:  # pragma: no cover - older typer uses the click package
     import click
 
+from . import __version__
 from .core.errors import SiteproofError, SiteproofWarning
+from .intake.flags import DataFlags, spec_from_flags, split_list
 
 app = typer.Typer(
     name="siteproof",
@@ -35,54 +37,25 @@ app = typer.Typer(
 )
 
 
+def _print_version(value: bool) -> None:
+    """``--version``: print ``siteproof <version>`` and stop."""
+    if value:
+        print(f"siteproof {__version__}")
+        raise typer.Exit(0)
+
+
+@app.callback()
+def _root(
+    version: Annotated[
+        bool, typer.Option("--version", help="Print the version and exit.", is_eager=True, callback=_print_version)
+    ] = False,
+) -> None:
+    """Blind observational analysis of pooled multi-site trials, scored against each site's randomization."""
+
+
 # ---------------------------------------------------------------------------------------------------------
 # data flags shared by run, blind, unmask and seal
 # ---------------------------------------------------------------------------------------------------------
-@dataclass
-class DataFlags:
-    """The data flags of issue 2 item 5; ``--study FILE.toml`` is the equivalent study file."""
-
-    data: Optional[Path] = None
-    study: Optional[Path] = None
-    outcome: Optional[str] = None
-    treatment: Optional[str] = None
-    site: Optional[str] = None
-    treated_value: Optional[str] = None
-    covariates: Optional[str] = None
-    id: Optional[str] = None
-    cost: Optional[str] = None
-    stratum: Optional[str] = None
-    rates: Optional[str] = None
-    margin: Optional[float] = None
-    seed: Optional[int] = None
-    encoding: Optional[str] = None
-    keep_column: Optional[list[str]] = None
-    drop_column: Optional[list[str]] = None
-    site_derived: Optional[list[str]] = None
-
-    def to_spec(self):
-        """Build the :class:`~siteproof.intake.study.StudySpec` from a study file and/or flags (flags win)."""
-        from .intake.study import StudySpec, load_spec_toml, parse_rates
-
-        given = {
-            "data": self.data, "outcome": self.outcome, "treatment": self.treatment, "site": self.site,
-            "treated_value": self.treated_value, "id": self.id, "cost": self.cost, "stratum": self.stratum,
-            "margin": self.margin, "seed": self.seed, "encoding": self.encoding,
-            "covariates": _split(self.covariates), "rates": parse_rates(self.rates) if self.rates else None,
-            "keep_columns": self.keep_column or None, "drop_columns": self.drop_column or None,
-            "site_derived": self.site_derived or None,
-        }
-        given = {key: value for key, value in given.items() if value is not None}
-        if self.study is not None:
-            return load_spec_toml(self.study, overrides=given)
-        for key, flag in (("data", "DATA"), ("outcome", "--outcome"), ("treatment", "--treatment"), ("site", "--site")):
-            if key not in given:
-                raise SiteproofError(
-                    f"{flag} is missing", f"give {flag} (see `siteproof run --help`) or describe the study with --study FILE.toml"
-                )
-        return StudySpec(**given)
-
-
 _DATA_HELP = {
     "study": "Study file (TOML) naming the data and column roles; flags override its keys.",
     "outcome": "Outcome column (numeric; 0/1 allowed).",
@@ -142,10 +115,6 @@ def with_data_flags(func: Callable[..., Any]) -> Callable[..., Any]:
     return wrapper
 
 
-def _split(text: Optional[str]) -> Optional[list[str]]:
-    return [part.strip() for part in text.split(",") if part.strip()] if text else None
-
-
 # ---------------------------------------------------------------------------------------------------------
 # options shared by several verbs
 # ---------------------------------------------------------------------------------------------------------
@@ -161,7 +130,7 @@ FailOnOpt = Annotated[Optional[str], typer.Option("--fail-on", help="Exit 1 when
 def _blind_config(seed: int, folds: int, models: str):
     from .blind.analysis import BlindConfig
 
-    return BlindConfig(seed=seed, folds=folds, models=tuple(_split(models) or ()))
+    return BlindConfig(seed=seed, folds=folds, models=tuple(split_list(models) or ()))
 
 
 def _fit_progress(config):
@@ -243,11 +212,11 @@ def blind(
     force: ForceOpt = False,
 ) -> None:
     """Blind analysis (site hidden): propensities, average and heterogeneous effects, rules → claims.json."""
+    spec = spec_from_flags(flags, out)
     from .core.console import console
     from .pipeline import blind_stage
     from .reporting.screens import claims_renderables
 
-    spec = flags.to_spec()
     config = _blind_config(spec.seed, folds, models)
     with _fit_progress(config) as tick:
         _, claims = blind_stage(spec, out, config, force=force, progress=tick)
@@ -268,10 +237,11 @@ def unmask(
     force: ForceOpt = False,
 ) -> None:
     """Reveal sites and known rates; score every blind claim → scorecard.json with verdicts."""
+    spec = spec_from_flags(flags, out)
     from .pipeline import unmask_stage
 
     result = unmask_stage(
-        flags.to_spec(), claims, out, margin=flags.margin, transport=transport, workers=workers, force=force
+        spec, claims, out, margin=flags.margin, transport=transport, workers=workers, force=force
     )
     _print_scorecard(result.scorecard, out)
     _exit_for(result.scorecard, fail_on)
@@ -290,9 +260,9 @@ def run(
     force: ForceOpt = False,
 ) -> None:
     """Blind analysis, unmasking and report in one go."""
+    spec = spec_from_flags(flags, out)
     from .pipeline import run_pipeline
 
-    spec = flags.to_spec()
     config = _blind_config(spec.seed, folds, models)
     with _fit_progress(config) as tick:
         result = run_pipeline(
@@ -323,10 +293,11 @@ def seal(
     force: ForceOpt = False,
 ) -> None:
     """Seal a holdout benchmark: leak audit, then public data for students and a key for the teacher."""
+    spec = spec_from_flags(flags, out)
     from .core.console import console
     from .benchmark.holdout import seal_benchmark
 
-    result = seal_benchmark(flags.to_spec(), out, holdout_share=holdout_share, force=force)
+    result = seal_benchmark(spec, out, holdout_share=holdout_share, force=force)
     console.print(f"sealed {result.n:,} units ({result.n_graded:,} graded); "
                   f"design-based ATE {result.design_ate.estimate:.3f} (SE {result.design_ate.se:.3f}) kept in the key")
     console.print(f"hand out: {Path(out) / 'public'}   keep sealed: {Path(out) / 'key'}")
@@ -387,16 +358,27 @@ def _usage_line(exc: click.exceptions.UsageError) -> str:
 def main(argv: Optional[list[str]] = None) -> int:
     """Console entry point; returns the exit status (0 ok, 1 `--fail-on` triggered, 2 user error)."""
     command = typer.main.get_command(app)
-    warnings.simplefilter("always", SiteproofWarning)
-    warnings.showwarning = _show_warning
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", SiteproofWarning)
+        warnings.showwarning = _show_warning  # restored when the block ends
+        return _invoke(command, argv)
+
+
+def _invoke(command: click.Command, argv: Optional[list[str]]) -> int:
+    """Run the click command, turning user mistakes into one line on stderr and an exit status."""
     try:
         result = command.main(args=argv, prog_name="siteproof", standalone_mode=False)
+    except click.exceptions.NoArgsIsHelpError as exc:
+        print(exc.ctx.get_help() if exc.ctx is not None else exc.format_message())
+        return 2
     except SiteproofError as exc:
         print(exc.one_line(), file=sys.stderr)
         return 2
     except click.exceptions.UsageError as exc:
         print(" ".join(_usage_line(exc).split()), file=sys.stderr)
         return 2
+    except typer.Exit as exc:
+        return int(exc.exit_code)
     except typer.Abort:
         print("error: interrupted — rerun the command; no partial outputs were kept", file=sys.stderr)
         return 130

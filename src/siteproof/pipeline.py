@@ -11,8 +11,11 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
-from .blind.analysis import BlindConfig, Claims, run_blind
-from .blind.claims import read_claims, write_claims
+import pandas as pd
+
+from .blind.analysis import BlindConfig, run_blind
+from .blind.claims import Claims, read_claims, write_claims
+from .core.results import ResultsMixin
 from .core.outputs import StagedOutput, atomic_write_json, atomic_write_text, check_out_dir
 from .reporting.report import write_report
 from .simulation.simulate import simulate, write_simulation
@@ -25,14 +28,25 @@ DEMO_DESIGNS = ("demo", "hidden_branch")
 DEMO_MARKER = ".siteproof-demo"
 
 
-@dataclass
-class PipelineResult:
-    """What one run produced: the study, the claims (None when unmasking earlier claims), the scorecard."""
+@dataclass(repr=False)
+class PipelineResult(ResultsMixin):
+    """What one run produced: the study, the claims, the scorecard and the folder written (None: nothing written).
+
+    Its frame and summary are the scorecard's (one row per scored claim), or the claims' when nothing was unmasked.
+    """
 
     study: Study
-    claims: dict
+    claims: Claims
     scorecard: Scorecard | None
-    out_dir: Path
+    out_dir: Path | None
+
+    def _key_numbers(self) -> dict[str, object]:
+        return {"n": self.study.n, "sites": self.study.n_sites, "claims": len(self.claims.to_frame()),
+                "scored": None if self.scorecard is None else len(self.scorecard.to_frame()),
+                "out_dir": None if self.out_dir is None else str(self.out_dir)}
+
+    def to_frame(self) -> pd.DataFrame:
+        return (self.claims if self.scorecard is None else self.scorecard).to_frame()
 
 
 def blind_stage(
@@ -43,8 +57,8 @@ def blind_stage(
     check_out_dir(out_dir, force)  # refuse before any work, not after it
     study = load_study(spec)
     with StagedOutput(out_dir, force) as staged:
-        claims = run_blind(study.blind, _config_for(spec, config), progress=progress)
-        write_claims(claims.to_dict(), claims.units, staged)
+        claims = run_blind(study, _config_for(spec, config), progress=progress)
+        write_claims(claims, staged)
     return study, claims
 
 
@@ -55,37 +69,42 @@ def unmask_stage(
     """Unmask earlier claims against the sites' randomization; writes ``scorecard.json`` (and the report)."""
     check_out_dir(out_dir, force)
     study = load_study(spec)
-    record, units = read_claims(claims_dir)
+    claims = read_claims(claims_dir)
     scorecard = run_unmask(
-        study, record, units, margin=_margin(spec, margin), seed=spec.seed, transport=transport, workers=workers
+        study, claims, margin=_margin(spec, margin), seed=spec.seed, transport=transport, workers=workers
     )
     with StagedOutput(out_dir, force) as staged:
-        atomic_write_json(staged / "scorecard.json", scorecard.to_dict())
-        if report:
-            write_report(staged, record, scorecard.to_dict())
-    return PipelineResult(study, record, scorecard, Path(out_dir))
+        _write_scorecard(staged, claims, scorecard, report)
+    return PipelineResult(study, claims, scorecard, Path(out_dir))
 
 
 def run_pipeline(
-    spec: StudySpec, out_dir: Path | str, config: BlindConfig | None = None, *, margin: float | None = None,
-    transport: bool = False, workers: int = 1, force: bool = False, report: bool = True,
-    progress: Tick | None = None,
+    spec: StudySpec, out_dir: Path | str | None = None, config: BlindConfig | None = None, *,
+    margin: float | None = None, transport: bool = False, workers: int = 1, force: bool = False,
+    report: bool = True, progress: Tick | None = None,
 ) -> PipelineResult:
-    """Blind + unmask (+ report) in one go, all outputs published together at the end."""
-    check_out_dir(out_dir, force)
+    """Blind + unmask (+ report) in one go; with ``out_dir`` all outputs are published together at the end,
+    without it nothing is written (the results stay in the returned objects)."""
+    if out_dir is not None:
+        check_out_dir(out_dir, force)
     study = load_study(spec)
-    claims = run_blind(study.blind, _config_for(spec, config), progress=progress)
-    record = claims.to_dict()
+    claims = run_blind(study, _config_for(spec, config), progress=progress)
     scorecard = run_unmask(
-        study, record, claims.units, margin=_margin(spec, margin), seed=spec.seed,
-        transport=transport, workers=workers,
+        study, claims, margin=_margin(spec, margin), seed=spec.seed, transport=transport, workers=workers,
     )
+    if out_dir is None:
+        return PipelineResult(study, claims, scorecard, None)
     with StagedOutput(out_dir, force) as staged:
-        write_claims(record, claims.units, staged)
-        atomic_write_json(staged / "scorecard.json", scorecard.to_dict())
-        if report:
-            write_report(staged, record, scorecard.to_dict())
-    return PipelineResult(study, record, scorecard, Path(out_dir))
+        write_claims(claims, staged)
+        _write_scorecard(staged, claims, scorecard, report)
+    return PipelineResult(study, claims, scorecard, Path(out_dir))
+
+
+def _write_scorecard(folder: Path, claims: Claims, scorecard: Scorecard, report: bool) -> None:
+    """``scorecard.json`` and (when asked) the report, into ``folder``; files take the dict forms."""
+    atomic_write_json(folder / "scorecard.json", scorecard.to_dict())
+    if report:
+        write_report(folder, claims.to_dict(), scorecard.to_dict())
 
 
 def write_demo_data(design: str, folder: Path) -> StudySpec:

@@ -39,10 +39,9 @@ from .evaluation import blp, cost_curve, gates, r_loss_comparison, rank_metric
 from .nuisance import Nuisances, cross_fit_nuisances, make_folds
 from .rules import TreeRule, budget_rule, cross_fitted_tree, rule_value, threshold_rule
 from ..core.scores import arm_scores
-from ..intake.study import BlindData
+from ..intake.study import BlindData, Study
+from .claims import CLAIMS_SCHEMA, CLAIMS_VERSION, Claims, rule_column, rule_name, score_column, tau_column
 
-CLAIMS_SCHEMA = "siteproof/claims"
-CLAIMS_VERSION = 1
 ATE_ESTIMATORS = ("naive", "regression", "ipw", "aipw", "overlap")
 SMALL_DATA = 20_000  # below this many units the boosting fits run on one OpenMP thread (see _thread_limit)
 
@@ -64,8 +63,20 @@ class BlindConfig:
     nuisance_learners: dict[str, Any] | None = field(default=None, compare=False)
     cate_learner: Any = field(default=None, compare=False)
 
+    def __post_init__(self) -> None:
+        self.validate()
+
     def validate(self) -> None:
         """Raise :class:`SiteproofError` for settings that cannot work."""
+        if self.folds < 2:
+            raise SiteproofError(f"folds = {self.folds}: cross-fitting needs at least 2 folds", "use folds ≥ 2 (default 5)")
+        if self.tree_bins < 2:
+            raise SiteproofError(f"tree_bins = {self.tree_bins}: a split needs at least 2 bins", "use tree_bins ≥ 2 (default 32)")
+        if self.seed < 0:
+            raise SiteproofError(f"seed = {self.seed} is negative", "use a seed ≥ 0")
+        repeated = sorted({m for m in self.models if self.models.count(m) > 1})
+        if repeated:
+            raise SiteproofError(f"effect model(s) listed twice: {', '.join(repeated)}", "list each model once")
         unknown = [m for m in self.models if m not in CATE_KEYS]
         if unknown:
             raise SiteproofError(
@@ -81,6 +92,8 @@ class BlindConfig:
             raise SiteproofError(f"clipping bounds {self.clip} are not 0 ≤ low < 0.5 < high ≤ 1", "use e.g. 0.01,0.99")
         if any(not 0 < q < 1 for q in self.budgets):
             raise SiteproofError("budget shares must lie strictly between 0 and 1", "use e.g. 0.1,0.2,0.3")
+        if len(set(self.budgets)) < len(self.budgets):
+            raise SiteproofError("a budget share is listed twice", "list each budget share once")
         if self.gates_groups < 2:
             raise SiteproofError("GATES needs at least 2 groups", "set gates_groups ≥ 2")
         if self.threads is not None and self.threads < 1:
@@ -106,20 +119,6 @@ class BlindConfig:
         }
 
 
-@dataclass
-class Claims:
-    """Everything the blind analysis asserts, plus the fitted objects needed to transport it to new units."""
-
-    record: dict[str, Any]
-    units: pd.DataFrame
-    cate_fits: dict[str, CateFit] = field(repr=False)
-    tree: TreeRule | None = field(default=None, repr=False)
-
-    def to_dict(self) -> dict[str, Any]:
-        """The content of ``claims.json``."""
-        return self.record
-
-
 def _timed(timings: dict[str, float], key: str, start: float) -> float:
     now = time.perf_counter()
     timings[key] = timings.get(key, 0.0) + now - start
@@ -127,7 +126,7 @@ def _timed(timings: dict[str, float], key: str, start: float) -> float:
 
 
 def _ate_claims(data: BlindData, nuis: Nuisances) -> list:
-    """The five average-effect estimators of issue 3 item 4, each an Estimate with per-unit scores."""
+    """The five average-effect estimators, each an Estimate with per-unit scores."""
     y, w, e = data.y, data.w, nuis.e_hat
     return [
         naive(y, w),
@@ -147,7 +146,7 @@ def _evaluate_model(
     key: str, tau: np.ndarray, tau_const: np.ndarray, data: BlindData, nuis: Nuisances,
     gamma: np.ndarray, config: BlindConfig,
 ) -> dict[str, Any]:
-    """All evaluation figures of one CATE model, with the blind AIPW scores (issue 3 item 6)."""
+    """All evaluation figures of one CATE model, with the blind AIPW scores."""
     y, w, e = data.y, data.w, nuis.e_hat
     out: dict[str, Any] = {"model": key, "tau_summary": _tau_summary(tau)}
     out["r_loss"] = r_loss_comparison(y, w, e, nuis.m_hat, tau, tau_const).to_dict()
@@ -165,12 +164,13 @@ def _evaluate_model(
 def _rule_claims(
     data: BlindData, nuis: Nuisances, fits: dict[str, CateFit], config: BlindConfig,
 ) -> tuple[list[dict[str, Any]], dict[str, np.ndarray], TreeRule | None]:
-    """Threshold, budget and depth-2 tree rules with their doubly robust values (issue 3 item 7)."""
+    """Threshold, budget and depth-2 tree rules with their doubly robust values."""
     gamma0, gamma1 = arm_scores(data.y, data.w, nuis.e_hat, nuis.mu0, nuis.mu1)
     records: list[dict[str, Any]] = []
     assignments: dict[str, np.ndarray] = {}
 
-    def add(name: str, model: str | None, kind: str, budget: float | None, pi: np.ndarray, text: str = "") -> None:
+    def add(model: str | None, kind: str, budget: float | None, pi: np.ndarray, text: str = "") -> None:
+        name = rule_name(model, kind, budget)
         value = rule_value(pi, gamma0, gamma1, data.cost)
         rec = {"rule": name, "model": model, "kind": kind, "budget": budget, **value.to_dict()}
         if text:
@@ -181,15 +181,15 @@ def _rule_claims(
     for key, fit in fits.items():
         if key == "constant":
             continue
-        add(f"{key}.threshold", key, "threshold", None, threshold_rule(fit.tau, data.cost))
+        add(key, "threshold", None, threshold_rule(fit.tau, data.cost))
         for q in config.budgets:
-            add(f"{key}.top{round(q * 100)}", key, "budget", q, budget_rule(fit.tau, q))
+            add(key, "budget", q, budget_rule(fit.tau, q))
     tree = None
     if config.tree:
         pi_tree, tree, _ = cross_fitted_tree(
             data.X, gamma0, gamma1, nuis.folds, data.feature_names, cost=data.cost, max_bins=config.tree_bins
         )
-        add("tree", None, "tree", None, pi_tree, tree.to_text())
+        add(None, "tree", None, pi_tree, tree.to_text())
     return records, assignments, tree
 
 
@@ -206,9 +206,9 @@ def _units_table(
         "mu1": nuis.mu1,
         "m_hat": nuis.m_hat,
     }
-    cols.update({f"score_{est.name}": est.scores for est in ates})
-    cols.update({f"tau_{key}": fit.tau for key, fit in fits.items()})
-    cols.update({f"rule_{name}": pi.astype(np.int8) for name, pi in rules.items()})
+    cols.update({score_column(est.name): est.scores for est in ates})
+    cols.update({tau_column(key): fit.tau for key, fit in fits.items()})
+    cols.update({rule_column(name): pi.astype(np.int8) for name, pi in rules.items()})
     return pd.DataFrame(cols)
 
 
@@ -229,14 +229,17 @@ def _data_record(data: BlindData) -> dict[str, Any]:
 
 
 def run_blind(
-    data: BlindData, config: BlindConfig | None = None, progress: Callable[[str], None] | None = None
+    data: Study | BlindData, config: BlindConfig | None = None, progress: Callable[[str], None] | None = None
 ) -> Claims:
     """Run the whole blind analysis on ``data`` and return its claims.
 
+    A :class:`Study` is reduced to its blind view ``study.blind`` first, so the site never reaches this code.
+
     ``progress`` is called with a short label after each model fit (see :func:`count_fits` for the total).
     """
+    if isinstance(data, Study):
+        data = data.blind
     config = config or BlindConfig()
-    config.validate()
     with threadpool_limits(limits=_thread_limit(config, data.y.size), user_api="openmp"):
         return _run_blind(data, config, progress)
 

@@ -19,7 +19,7 @@ outcome, for μ̂₀, μ̂₁ and m̂ (fitted by classifiers, predictions P(Y = 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable, Literal, Mapping
+from typing import Any, Callable, Mapping
 
 import numpy as np
 from sklearn.base import BaseEstimator, RegressorMixin, is_classifier
@@ -35,8 +35,6 @@ NUISANCE_NAMES = ("propensity", "mu0", "mu1", "m")
 _PROB_FLOOR = 1e-15
 _RIDGE_ALPHAS = tuple(float(a) for a in np.logspace(-3, 3, 13))
 _ROW_BLOCK = 1 << 15
-
-Kind = Literal["classifier", "regressor"]
 
 
 def make_folds(w: np.ndarray, k: int = 5, seed: int = 0) -> np.ndarray:
@@ -182,28 +180,6 @@ def _gcv_alpha(alphas: np.ndarray, d: np.ndarray, c: np.ndarray, yy: float, n: i
     room = n - np.sum(d / (d + a), axis=1)
     gcv = np.where(room > 0, n * rss / np.maximum(room, 1e-300) ** 2, np.inf)
     return float(alphas[int(np.argmin(gcv))])
-
-
-def fit_predict(
-    estimator: Any,
-    X_train: np.ndarray,
-    y_train: np.ndarray,
-    X_pred: np.ndarray,
-    *,
-    kind: Kind,
-    sample_weight: np.ndarray | None = None,
-) -> np.ndarray:
-    """Fit a fresh clone of ``estimator`` on (X_train, y_train) and predict for X_pred.
-
-    ``kind="classifier"`` returns P(class 1) (a training set holding a single class predicts that class,
-    0 or 1, since no classifier can be fitted); ``kind="regressor"`` returns ``predict``.  ``sample_weight``
-    is passed to ``fit`` (to the last step of a Pipeline).  See :mod:`siteproof.core.learners`.
-    """
-    if (kind == "classifier") != bool(is_classifier(estimator)):
-        raise SiteproofError(
-            f"{type(estimator).__name__} is not a {kind}", f"pass a scikit-learn {kind} for this model"
-        )
-    return predict_model(fit_model(estimator, X_train, y_train, sample_weight=sample_weight), X_pred)
 
 
 def cross_fit_nuisances(

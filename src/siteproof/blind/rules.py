@@ -1,4 +1,4 @@
-"""Learned treatment rules and their values (design.md point 7, issue 3 item 7).
+"""Learned treatment rules and their values: who to treat, and what treating them that way is worth.
 
 Rules
 -----
@@ -36,10 +36,10 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from ..core.checks import finite_vector, in_unit_interval, one_dimensional
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 
-DEFAULT_BUDGETS = (0.1, 0.2, 0.3, 0.4, 0.5)
 DEFAULT_MIN_LEAF_SHARE = 0.05
 _TREAT, _NO_TREAT = "treat", "do not treat"
 
@@ -49,16 +49,11 @@ _TREAT, _NO_TREAT = "treat", "do not treat"
 
 def _vector(name: str, values: Any, n: int | None = None) -> np.ndarray:
     """A finite float64 vector (of length n if given), else SiteproofError."""
-    arr = np.asarray(values, dtype=float)
-    if arr.ndim != 1:
-        raise SiteproofError(f"{name} must be one-dimensional, got shape {arr.shape}", f"pass a 1-D array for {name}")
+    arr = one_dimensional(name, values)
     if n is not None and arr.size != n:
         raise SiteproofError(f"{name} has {arr.size} entries but {n} were expected",
                              "pass arrays of the same length, one entry per unit")
-    if not np.all(np.isfinite(arr)):
-        raise SiteproofError(f"{name} contains missing or infinite values",
-                             f"impute or drop them before computing {name}")
-    return arr
+    return finite_vector(name, arr, f"impute or drop them before computing {name}")
 
 
 def _cost_vector(cost: Any, n: int) -> np.ndarray:
@@ -73,8 +68,7 @@ def _cost_vector(cost: Any, n: int) -> np.ndarray:
 def _assignment(pi: Any, n: int | None = None) -> np.ndarray:
     """Assignments π_i ∈ [0, 1] (0/1 for deterministic rules; fractions for randomised ones)."""
     arr = _vector("rule assignments", pi, n)
-    if np.any((arr < 0) | (arr > 1)):
-        raise SiteproofError("rule assignments must lie in [0, 1]", "pass 0/1 treat indicators (or probabilities)")
+    in_unit_interval("rule assignments", arr, "pass 0/1 treat indicators (or probabilities)")
     return arr
 
 
@@ -106,17 +100,6 @@ def budget_rule(tau: Any, q: float) -> np.ndarray:
     pi = np.zeros(tau.size, dtype=np.int8)
     pi[order[:n_treat]] = 1
     return pi
-
-
-def effect_rules(tau: Any, cost: Any = None, budgets: Sequence[float] = DEFAULT_BUDGETS) -> dict[str, np.ndarray]:
-    """The rules of one CATE model: ``threshold`` (τ̂ > c) and ``top10``, ``top20``, … (budget rules on τ̂).
-
-    Budget rules rank by τ̂ as the issue specifies; with a cost column the threshold rule is net of cost.
-    """
-    rules = {"threshold": threshold_rule(tau, cost)}
-    for q in budgets:
-        rules[f"top{round(100 * q)}"] = budget_rule(tau, q)
-    return rules
 
 
 # ───────────────────────────── rule values ─────────────────────────────

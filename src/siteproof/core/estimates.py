@@ -2,7 +2,7 @@
 
 An :class:`Estimate` carries the point estimate, its standard error, a 95% confidence interval and, where
 the estimator is (asymptotically) a mean of per-unit scores, those scores ψ_i with mean(ψ) = estimate.  The
-scores are what makes paired comparisons possible (design.md point 4): two estimates computed on the same
+scores are what makes paired comparisons possible: two estimates computed on the same
 units are compared through mean(ψ_a − ψ_b) with SE sd(ψ_a − ψ_b)/√n.
 """
 
@@ -14,6 +14,9 @@ from statistics import NormalDist
 from typing import Any
 
 import numpy as np
+import pandas as pd
+
+from .results import ResultsMixin
 
 _NORMAL = NormalDist()
 Z95 = _NORMAL.inv_cdf(0.975)
@@ -34,8 +37,8 @@ def mean_and_se(scores: np.ndarray) -> tuple[float, float]:
     return float(scores.mean()), float(scores.std(ddof=1) / np.sqrt(n))
 
 
-@dataclass(frozen=True)
-class Estimate:
+@dataclass(frozen=True, repr=False)
+class Estimate(ResultsMixin):
     """A point estimate with SE, 95% CI and (optionally) the per-unit scores it is the mean of."""
 
     name: str
@@ -69,6 +72,20 @@ class Estimate:
     def p_value(self) -> float:
         """Two-sided normal p-value for estimate = 0."""
         return math.erfc(abs(self.z) / math.sqrt(2.0)) if np.isfinite(self.z) else float("nan")
+
+    def conf_int(self, alpha: float = 0.05) -> tuple[float, float]:
+        """Wald interval estimate ± z_{1−α/2}·se at level 1 − α (normal approximation)."""
+        return normal_ci(self.estimate, self.se, 1.0 - alpha)
+
+    def _key_numbers(self) -> dict[str, Any]:
+        return {"name": self.name, "estimand": self.estimand, "estimate": self.estimate, "se": self.se}
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row: name, estimand, estimate, se, ci_low, ci_high, p_value (no per-unit scores)."""
+        return pd.DataFrame([{
+            "name": self.name, "estimand": self.estimand, "estimate": self.estimate, "se": self.se,
+            "ci_low": self.ci[0], "ci_high": self.ci[1], "p_value": self.p_value,
+        }])
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (scores are kept out; they go to the per-unit sidecar)."""

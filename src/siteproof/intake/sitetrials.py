@@ -14,7 +14,7 @@ least two units in each arm; the others are excluded and listed):
 Its per-unit scores ψ_i = W_i (Y_i − ȳ₁_c)/p̂_c − (1 − W_i)(Y_i − ȳ₀_c)/(1 − p̂_c) + DiM_c, with the
 realized share p̂_c = n₁_c / n_c, average exactly to τ̂_design over the included units.  The SE of τ̂_design
 itself is the formula above; the scores exist for paired comparisons with blind estimates on the same units
-(design.md point 4), where SE = sd(ψ_blind − ψ_design)/√n.
+(the pairing keeps their correlation), where SE = sd(ψ_blind − ψ_design)/√n.
 
 The Neyman variance equals the square of the HC2 standard error of the OLS coefficient of Y on W
 (Samii & Aronow 2012; Imbens & Kolesár 2016).  With a known assignment rate e the site table also reports
@@ -27,7 +27,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Iterable
+from typing import Any, Iterable
 
 import numpy as np
 import pandas as pd
@@ -37,8 +37,6 @@ from ..core.errors import SiteproofError
 from ..core.estimates import Estimate, mean_and_se, normal_ci
 from ..core.scores import ipw_scores
 
-if TYPE_CHECKING:  # pragma: no cover - typing only; study imports design, not the other way round
-    from .study import Study
 
 MIN_PER_ARM = 2
 SITE_TABLE_COLUMNS = (
@@ -339,50 +337,3 @@ def design_ate(y: Any, w: Any, site: Any, stratum: Any = None) -> DesignATE:
         note = f"excludes {', '.join(excluded)} (fewer than {MIN_PER_ARM} units in an arm)"
     estimate = Estimate.from_value("design", est, math.sqrt(var), scores=scores[included], note=note)
     return DesignATE(estimate, included, excluded, site_table(y, w, site, stratum=strata))
-
-
-# ----------------------------------------------------------------------------------------------------------
-# summary for the command line and the demo
-# ----------------------------------------------------------------------------------------------------------
-def _plain(value: Any) -> Any:
-    """numpy scalars → Python scalars, NaN → None."""
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
-
-
-def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    return [{k: _plain(v) for k, v in row.items()} for row in frame.to_dict("records")]
-
-
-def study_design_summary(study: "Study") -> dict[str, Any]:
-    """JSON-ready design summary of a loaded study: study facts, per-site table, randomization cells,
-    pooled design-based ATE, naive ATE and every warning (intake warnings plus excluded sites)."""
-    blind = study.blind
-    declared = study.known_rate if study.rates_source == "declared" else None
-    sites = site_table(blind.y, blind.w, study.site, study.known_rate, declared, study.stratum)
-    design = design_ate(blind.y, blind.w, study.site, study.stratum)
-    warnings = list(study.warnings)
-    if design.excluded_sites:
-        warnings.append(
-            f"excluded from the design-based estimate (fewer than {MIN_PER_ARM} units in an arm): "
-            f"{', '.join(design.excluded_sites)}; it covers the other {design.n_included} units"
-        )
-    return {
-        "study": {
-            "name": study.spec.name, "n": study.n, "n_sites": study.n_sites,
-            "n_excluded": dict(blind.n_excluded), "outcome": blind.outcome, "treatment": blind.treatment,
-            "treated_value": blind.treated_value, "binary_outcome": blind.binary_outcome,
-            "rates_source": study.rates_source, "covariates": list(blind.covariates),
-            "n_features": len(blind.feature_names), "fingerprint": blind.fingerprint,
-        },
-        "sites": _records(sites),
-        "cells": _records(study.cells),
-        "design_ate": design.to_dict(),
-        "naive_ate": naive_ate(blind.y, blind.w).to_dict(),
-        "warnings": warnings,
-    }

@@ -28,11 +28,10 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
+from ..core.interpret import DIFFERENT, Z_90, Z_95
 from . import theme
 
 P = ParamSpec("P")
-Z95 = 1.959963984540054
-Z90 = 1.6448536269514722
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -295,14 +294,14 @@ def average_effect_figure(blind: Sequence[Interval], design: Interval, differenc
     for row, yy in zip(differences, y):
         if not row.finite:
             continue
-        se = (row.high - row.low) / (2 * Z95)
+        se = (row.high - row.low) / (2 * Z_95)
         right.plot([row.low, row.high], [yy, yy], color=theme.ROLE["blind"], lw=1.4)
-        right.plot([row.estimate - Z90 * se, row.estimate + Z90 * se], [yy, yy], color=theme.ROLE["blind"], lw=5,
+        right.plot([row.estimate - Z_90 * se, row.estimate + Z_90 * se], [yy, yy], color=theme.ROLE["blind"], lw=5,
                    solid_capstyle="butt", alpha=0.75)
         right.plot(row.estimate, yy, "o", color=theme.ROLE["blind"], mfc="white", mew=1.4, ms=6.5, zorder=3)
     for text, yy in zip(verdicts, y):
         right.annotate(text, (1.02, yy), xycoords=("axes fraction", "data"), va="center", ha="left",
-                       fontsize=theme.BASE_FONT - 0.5, fontweight="bold" if text == "different" else "normal")
+                       fontsize=theme.BASE_FONT - 0.5, fontweight="bold" if text == DIFFERENT else "normal")
     right.set_xlabel(f"blind − design, paired ({unit})")
     handles, labels = right.get_legend_handles_labels()
     handles += [Line2D([], [], color=theme.ROLE["blind"], lw=1.4), Line2D([], [], color=theme.ROLE["blind"], lw=5, alpha=0.75)]
@@ -457,7 +456,7 @@ def _band(ax: Axes, curve: Curve, role: str, style, label: str | None, zoom_from
     x = np.asarray(curve.x, dtype=float)
     y = np.asarray(curve.y, dtype=float)
     se = np.asarray(curve.se, dtype=float)
-    low, high = y - Z95 * se, y + Z95 * se
+    low, high = y - Z_95 * se, y + Z_95 * se
     colour = theme.ROLE[role]
     if role == "design":
         ax.fill_between(x, low, high, facecolor="none", edgecolor=colour, hatch="....", lw=0, alpha=0.35)

@@ -7,45 +7,27 @@ from __future__ import annotations
 
 from typing import Any
 
-import numpy as np
 from rich import box
 from rich.table import Table
 from rich.text import Text
 
-from ..unmask.correspondence import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, Comparison
+from ..core.interpret import (
+    DIFFERENT,
+    EQUIVALENT,
+    HETEROGENEITY_MEANING,
+    HETEROGENEITY_SHORT,
+    INDETERMINATE,
+    TRIVIALLY_DIFFERENT,
+    calibration_judgement,
+    estimator_label,
+    model_label,
+    verdict_note,
+)
+from ..unmask.correspondence import Comparison
 from ..unmask.scoring import Scorecard
+from .formatting import fmt, fmt_ci, fmt_pct, fmt_pm, fmt_sig
 
 SCREEN_RULES = (".threshold", ".top20", "tree")
-
-MODEL_NAMES = {
-    "constant": "constant effect",
-    "s": "S-learner",
-    "t": "T-learner",
-    "x": "X-learner",
-    "r": "R-learner",
-    "dr": "DR-learner",
-}
-ESTIMATOR_NAMES = {
-    "naive": "difference in means (unadjusted)",
-    "regression": "regression adjustment (Lin 2013, HC2)",
-    "ipw": "inverse-propensity weighting (Hajek)",
-    "aipw": "augmented IPW, cross-fitted",
-    "overlap": "overlap-weighted (Li, Morgan & Zaslavsky 2018)",
-}
-
-
-def fmt(value: Any, digits: int = 2) -> str:
-    """A number for a table cell: fixed digits, '—' for missing."""
-    if value is None:
-        return "—"
-    return f"{value:.{digits}f}"
-
-
-def fmt_ci(ci: Any, digits: int = 2) -> str:
-    """'[lo, hi]' for a 95 % interval."""
-    if not ci or ci[0] is None:
-        return "—"
-    return f"[{ci[0]:.{digits}f}, {ci[1]:.{digits}f}]"
 
 
 def _header(record: dict[str, Any]) -> Text:
@@ -71,8 +53,8 @@ def ate_table(record: dict[str, Any]) -> Table:
         table.add_column(col, justify="left" if col in ("estimator", "estimand") else "right")
     for row in record["ate"]:
         table.add_row(
-            ESTIMATOR_NAMES.get(row["estimator"], row["estimator"]), row["estimand"],
-            fmt(row["estimate"]), fmt(row["se"]), fmt_ci(row["ci"]),
+            estimator_label(row["estimator"]), row["estimand"],
+            fmt(row["estimate"], 2), fmt(row["se"], 2), fmt_ci(row["ci"], 2),
         )
     return table
 
@@ -92,12 +74,12 @@ def cate_table(record: dict[str, Any]) -> Table:
             continue
         diff = row["r_loss"]["difference"]
         table.add_row(
-            MODEL_NAMES.get(row["model"], row["model"]),
-            f"{diff['estimate']:.3f} ± {diff['se']:.3f}", fmt(row["r_loss"]["t"], 1),
-            f"{row['blp']['beta2']['estimate']:.2f} ± {row['blp']['beta2']['se']:.2f}",
+            model_label(row["model"]),
+            fmt_pm(diff["estimate"], diff["se"], 3), fmt(row["r_loss"]["t"], 1),
+            fmt_pm(row["blp"]["beta2"]["estimate"], row["blp"]["beta2"]["se"]),
             fmt(row["blp"]["p_beta2_positive"], 3),
-            f"{row['autoc']['estimate']:.2f} ± {row['autoc']['se']:.2f}",
-            f"{row['gates']['high_low']['estimate']:.2f} ± {row['gates']['high_low']['se']:.2f}",
+            fmt_pm(row["autoc"]["estimate"], row["autoc"]["se"]),
+            fmt_pm(row["gates"]["high_low"]["estimate"], row["gates"]["high_low"]["se"]),
         )
     return table
 
@@ -115,9 +97,9 @@ def rules_table(record: dict[str, Any]) -> Table:
         if not row["rule"].endswith(SCREEN_RULES):
             continue
         table.add_row(
-            row["rule"], f"{100 * row['treated_share']:.0f}%",
-            f"{row['value']['estimate']:.2f} ± {row['value']['se']:.2f}",
-            f"{row['gain']['estimate']:.2f} ± {row['gain']['se']:.2f}", fmt_ci(row["gain"]["ci"]),
+            row["rule"], fmt_pct(row["treated_share"]),
+            fmt_pm(row["value"]["estimate"], row["value"]["se"]),
+            fmt_pm(row["gain"]["estimate"], row["gain"]["se"]), fmt_ci(row["gain"]["ci"], 2),
         )
     return table
 
@@ -137,7 +119,6 @@ def claims_renderables(record: dict[str, Any]) -> list[Any]:
 # the unmask screen: one-screen scorecard summary (rich renderables; the CLI prints them)
 # --------------------------------------------------------------------------------------------------------
 _STYLE = {EQUIVALENT: "green", TRIVIALLY_DIFFERENT: "yellow", DIFFERENT: "bold red", INDETERMINATE: "dim"}
-_STATUS_SHORT = {"confirmed": "yes", "not confirmed": "no", "missed": "missed", "none claimed, none found": "none"}
 
 
 def _v(verdict: str) -> Text:
@@ -145,7 +126,8 @@ def _v(verdict: str) -> Text:
 
 
 def _num(x: float | None, digits: int = 3) -> str:
-    return "—" if x is None or not np.isfinite(x) else f"{x:.{digits}g}"
+    """A compact number (``digits`` significant digits) for a scorecard cell."""
+    return fmt_sig(x, digits)
 
 
 def _diff(c: Comparison) -> str:
@@ -215,7 +197,7 @@ def _cate_table(scorecard: Scorecard, unit: str) -> Table:
         beta = f"{_num(b2.blind, 2)}/{_num(b2.design, 2)}" if b2 is not None else "—"
         status = row.heterogeneity["status"]
         t.add_row(row.model, _num(a.blind), _num(a.design), _diff(a), _v(a.verdict), beta,
-                  _STATUS_SHORT.get(status, status))
+                  HETEROGENEITY_SHORT.get(status, status))
     return t
 
 
@@ -237,7 +219,7 @@ def _rules_table(scorecard: Scorecard, unit: str) -> Table:
         g = row.gain if row.has_contrast else row.value
         agree, total = row.sites_agreeing
         name = row.rule if row.has_contrast else f"{row.rule}*"
-        t.add_row(name, f"{100 * row.treated_share:.0f}", _num(g.blind), _num(g.design), _diff(g),
+        t.add_row(name, fmt(100 * row.treated_share, 0), _num(g.blind), _num(g.design), _diff(g),
                   _v(row.verdict), f"{agree}/{total}")
     return t
 
@@ -246,22 +228,23 @@ def _context_text(scorecard: Scorecard) -> Text:
     p = scorecard.propensity
     slope = p.calibration_slope
     lines = [
-        f"Propensity: slope of the known rate e_S on ê {_num(slope.estimate)} (SE {_num(slope.se)}; ideal 1); "
+        f"Propensity: slope of the known rate e_S on ê {_num(slope.estimate)} (SE {_num(slope.se)}; ideal 1), "
+        f"{calibration_judgement(slope.estimate, slope.ci)}; "
         f"RMSE |ê − e_S| {_num(p.rmse)} vs ≈ {_num(p.rmse_floor)} for a perfect ê (ê targets the mixture "
         "E[e_S | X], not e_S)."
     ]
     if p.site_prediction is not None:
         sp = p.site_prediction
         lines.append(
-            f"Site visible from the covariates: cross-validated accuracy {100 * sp.accuracy.estimate:.0f}% vs "
-            f"{100 * sp.majority_share:.0f}% by always guessing the largest site."
+            f"Site visible from the covariates: cross-validated accuracy {fmt_pct(sp.accuracy.estimate)} vs "
+            f"{fmt_pct(sp.majority_share)} by always guessing the largest site."
         )
     if scorecard.meta_reml is not None:
         m, dl = scorecard.meta_reml, scorecard.meta_dl
         pi = m.prediction_interval
         lines.append(
             f"Between sites (per-site differences in means): Q = {_num(m.q)} (df {m.q_df}, "
-            f"p = {_num(m.q_pvalue, 2)}), I² = {m.i2:.0f}%, τ² = {_num(dl.tau2)} (DL) / {_num(m.tau2)} (REML, "
+            f"p = {_num(m.q_pvalue, 2)}), I² = {fmt(m.i2, 0)} %, τ² = {_num(dl.tau2)} (DL) / {_num(m.tau2)} (REML, "
             f"squared units); random-effects mean {_num(m.estimate)} (SE {_num(m.se)}); 95% prediction interval "
             f"for a new site [{_num(pi[0])}, {_num(pi[1])}]."
         )
@@ -274,15 +257,17 @@ def _footnote(scorecard: Scorecard, unit: str) -> Text:
     return Text(
         "D = blind − design, on the same units; its 95% CI uses the SE of the paired per-unit scores (AUTOC: "
         f"shared bootstrap half-samples). δ = {_num(scorecard.margin)} {unit} units is the equivalence margin "
-        "(β₂: δ/sd(τ̂)). Verdicts (Tryon & Lewis 2008): equivalent = not different and the 90% CI of D inside ±δ; "
-        "different = the 95% CI excludes 0 and the 90% CI is not inside ±δ; trivially different = the 95% CI "
-        "excludes 0 but the 90% CI is inside ±δ; indeterminate = neither. Bias red. = 100·(1 − |D|/|D_naive|) "
+        f"(β₂: δ/sd(τ̂)). {verdict_note()} Bias red. = 100·(1 − |D|/|D_naive|) "
         "(Shadish, Clark & Steiner 2008). ATO = overlap-weighted effect, a different estimand from the ATE. "
-        "Heterogeneity (β₂ > 0 or AUTOC > 0, one-sided 5%): yes = claimed blind and confirmed with design "
-        "scores; no = claimed, not confirmed; missed = not claimed but found; none = neither. Sites + = sites "
+        f"Heterogeneity (β₂ > 0 or AUTOC > 0, one-sided 5%): {_status_note()}. Sites + = sites "
         "whose design gain has the sign of the blind gain / sites where the rule splits the units; * = the rule "
         "treats everyone or no one (gain 0 by construction), so its value is compared. Design values use the "
         "known rates "
         f"({scorecard.rates_source}).",
         style="dim",
     )
+
+
+def _status_note() -> str:
+    """What each short heterogeneity status on the screen means."""
+    return "; ".join(f"{HETEROGENEITY_SHORT[k]} = {meaning}" for k, meaning in HETEROGENEITY_MEANING.items())

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from typing import Any
 
+from ..core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT
+
 # Okabe & Ito (2008) colour-universal-design palette.
 OKABE_ITO = {
     "black": "#000000",
@@ -46,6 +48,13 @@ ROW_HEIGHT = 0.42
 BASE_FONT = 10.5
 SVG_HASH_SALT = "siteproof"
 PNG_DPI = 144
+
+VERDICT_STYLE = {  # CSS declarations of each verdict's bordered word in report.html
+    EQUIVALENT: "border-style: solid;",
+    DIFFERENT: "border-width: 2px; font-weight: 700;",
+    TRIVIALLY_DIFFERENT: "border-style: dashed;",
+    INDETERMINATE: "border-style: dotted; color: var(--muted);",
+}
 
 SANS_STACK = ["DejaVu Sans", "Noto Sans", "Liberation Sans", "Arial"]
 MONO_STACK_CSS = 'ui-monospace, "DejaVu Sans Mono", "Noto Sans Mono", Menlo, Consolas, monospace'
@@ -99,6 +108,16 @@ def _cycler():
     return cycler(color=[OKABE_ITO[name] for name in order])
 
 
+def verdict_class(word: str) -> str:
+    """The CSS class of a verdict word ('trivially different' → 'trivially-different')."""
+    return word.replace(" ", "-")
+
+
+def _verdict_css() -> str:
+    """One rule per verdict: a distinct border, so that a verdict never relies on colour alone."""
+    return "\n".join(f".verdict.{verdict_class(word)} {{ {style} }}" for word, style in VERDICT_STYLE.items())
+
+
 def stylesheet() -> str:
     """The inline CSS of report.html (no web fonts, no external resources)."""
     return f"""
@@ -139,10 +158,7 @@ th.text {{ text-align: left; }}
 td.text {{ text-align: left; white-space: normal; min-width: 7em; }}
 .verdict {{ display: inline-block; padding: 0 6px; border: 1px solid var(--ink); border-radius: 3px;
   font-size: 13px; white-space: nowrap; background: #fff; }}
-.verdict.equivalent {{ border-style: solid; }}
-.verdict.different {{ border-width: 2px; font-weight: 700; }}
-.verdict.trivially-different {{ border-style: dashed; }}
-.verdict.indeterminate {{ border-style: dotted; color: var(--muted); }}
+{_verdict_css()}
 pre {{ font: 13.5px/1.45 {MONO_STACK_CSS}; background: #fff; border: 1px solid var(--rule); padding: 10px 12px;
   overflow-x: auto; }}
 ul.warnings li {{ margin: 2px 0; }}

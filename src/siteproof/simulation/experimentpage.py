@@ -27,35 +27,40 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from .. import __version__
-from ..reporting import theme
-from ..unmask.correspondence import VERDICTS
-from ..reporting.figures import new_figure, render, styled
+from ..core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, VERDICTS, Z_95
 from ..core.outputs import atomic_write_text
+from ..reporting import theme
+from ..reporting.figures import new_figure, render, styled
 
-Z95 = 1.959963984540054
 NOMINAL = 0.95
 VERDICT_STYLE = {  # stacking order, colour and hatching: each class is readable without colour
-    "equivalent": (theme.OKABE_ITO["bluish_green"], ""),
-    "trivially different": (theme.OKABE_ITO["sky_blue"], "//"),
-    "indeterminate": ("#DDDDDD", ".."),
-    "different": (theme.OKABE_ITO["vermillion"], "xx"),
+    EQUIVALENT: (theme.OKABE_ITO["bluish_green"], ""),
+    TRIVIALLY_DIFFERENT: (theme.OKABE_ITO["sky_blue"], "//"),
+    INDETERMINATE: ("#DDDDDD", ".."),
+    DIFFERENT: (theme.OKABE_ITO["vermillion"], "xx"),
 }
 
 
 # ----------------------------------------------------------------------------------------------------------
 # figures
 # ----------------------------------------------------------------------------------------------------------
-@styled
-def coverage_figure(labels: Sequence[str], coverage: Sequence[float], mcse: Sequence[float], replicates: int) -> Figure:
-    """Observed coverage (circle) ± 1.96 Monte Carlo SE per row; dashed line at 95 %; grey band: the range
-    0.95 ± 1.96·√(0.95·0.05/R) expected from Monte Carlo error alone when the coverage is exactly 95 %."""
-    fig, axes = new_figure(theme.FIG_WIDTH, max(2.4, theme.ROW_HEIGHT * len(labels) + 1.6))
+def _row_axes(labels: Sequence[str], margin: float) -> tuple[Figure, Any, np.ndarray]:
+    """A figure with one horizontal row per label (first label on top); ``margin``: extra height in inches."""
+    fig, axes = new_figure(theme.FIG_WIDTH, max(2.4, theme.ROW_HEIGHT * len(labels) + margin))
     ax = axes[0, 0]
     y = np.arange(len(labels))[::-1].astype(float)
     ax.set_yticks(y, labels)
     ax.set_ylim(-0.7, len(labels) - 0.3)
     ax.grid(axis="y", visible=False)
-    half = Z95 * math.sqrt(NOMINAL * (1 - NOMINAL) / max(replicates, 1))
+    return fig, ax, y
+
+
+@styled
+def coverage_figure(labels: Sequence[str], coverage: Sequence[float], mcse: Sequence[float], replicates: int) -> Figure:
+    """Observed coverage (circle) ± 1.96 Monte Carlo SE per row; dashed line at 95 %; grey band: the range
+    0.95 ± 1.96·√(0.95·0.05/R) expected from Monte Carlo error alone when the coverage is exactly 95 %."""
+    fig, ax, y = _row_axes(labels, 1.6)
+    half = Z_95 * math.sqrt(NOMINAL * (1 - NOMINAL) / max(replicates, 1))
     ax.axvspan(NOMINAL - half, NOMINAL + half, color=theme.RULE, alpha=0.7, zorder=0,
                label=f"95 % ± Monte Carlo error (R = {replicates})")
     ax.axvline(NOMINAL, color=theme.INK, ls=(0, (4, 3)), lw=1.0, label="nominal 95 %")
@@ -63,7 +68,7 @@ def coverage_figure(labels: Sequence[str], coverage: Sequence[float], mcse: Sequ
     for yy, p, se in zip(y, coverage, mcse):
         if not math.isfinite(p):
             continue
-        low, high = max(0.0, p - Z95 * se), min(1.0, p + Z95 * se)
+        low, high = max(0.0, p - Z_95 * se), min(1.0, p + Z_95 * se)
         ax.plot([low, high], [yy, yy], color=colour, lw=1.6, solid_capstyle="butt")
         ax.plot(p, yy, "o", color=colour, ms=6.5, zorder=3)
         ax.annotate(f"{100 * p:.1f} %", (1.01, yy), xycoords=("axes fraction", "data"), va="center", ha="left",
@@ -80,12 +85,7 @@ def coverage_figure(labels: Sequence[str], coverage: Sequence[float], mcse: Sequ
 def verdict_figure(labels: Sequence[str], shares: Sequence[dict[str, float]], different_mcse: Sequence[float]) -> Figure:
     """Stacked shares of the four verdict classes per row; the share of ``different`` (± Monte Carlo SE) is
     written at the end of each bar (``different`` is stacked last, at the right end)."""
-    fig, axes = new_figure(theme.FIG_WIDTH, max(2.4, theme.ROW_HEIGHT * len(labels) + 1.8))
-    ax = axes[0, 0]
-    y = np.arange(len(labels))[::-1].astype(float)
-    ax.set_yticks(y, labels)
-    ax.set_ylim(-0.7, len(labels) - 0.3)
-    ax.grid(axis="y", visible=False)
+    fig, ax, y = _row_axes(labels, 1.8)
     for yy, row, se in zip(y, shares, different_mcse):
         left = 0.0
         for verdict in VERDICT_STYLE:
@@ -95,7 +95,7 @@ def verdict_figure(labels: Sequence[str], shares: Sequence[dict[str, float]], di
             colour, hatch = VERDICT_STYLE[verdict]
             ax.barh(yy, share, left=left, height=0.62, color=colour, hatch=hatch, edgecolor=theme.INK, lw=0.6)
             left += share
-        diff = row.get("different", math.nan)
+        diff = row.get(DIFFERENT, math.nan)
         if math.isfinite(diff):
             ax.annotate(f"different {100 * diff:.1f} % (± {100 * se:.1f})", (1.01, yy),
                         xycoords=("axes fraction", "data"), va="center", ha="left", fontsize=theme.BASE_FONT - 0.5)
@@ -111,10 +111,12 @@ def verdict_figure(labels: Sequence[str], shares: Sequence[dict[str, float]], di
 # the page
 # ----------------------------------------------------------------------------------------------------------
 def _esc(text: Any) -> str:
+    """HTML-escaped text of ``text``."""
     return html.escape(str(text))
 
 
 def _num(value: Any, digits: int = 3) -> str:
+    """``value`` to ``digits`` significant digits; missing or non-finite as a dash."""
     try:
         v = float(value)
     except (TypeError, ValueError):
@@ -123,6 +125,7 @@ def _num(value: Any, digits: int = 3) -> str:
 
 
 def _pct(value: Any, se: Any = None) -> str:
+    """A share as a percentage with one decimal, optionally followed by (± SE); missing as a dash."""
     try:
         p = float(value)
     except (TypeError, ValueError):
@@ -136,6 +139,7 @@ def _pct(value: Any, se: Any = None) -> str:
 
 
 def _table(caption: str, header: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
+    """An HTML table with a caption; every cell escaped."""
     head = "".join(f"<th>{_esc(h)}</th>" for h in header)
     body = "".join("<tr>" + "".join(f"<td>{_esc(c)}</td>" for c in row) + "</tr>" for row in rows)
     return (f'<div class="table"><table><caption>{_esc(caption)}</caption><thead><tr>{head}</tr></thead>'
@@ -143,6 +147,7 @@ def _table(caption: str, header: Sequence[str], rows: Sequence[Sequence[str]]) -
 
 
 def _ate_table(rows: pd.DataFrame) -> str:
+    """The ATE rows of the summary: bias, RMSE, SD vs mean SE, both coverages, verdict shares."""
     header = ["estimator", "mean truth", "bias (± MC SE)", "RMSE", "SD of estimate", "mean SE",
               "coverage, population truth (± MC SE)", "coverage, sample truth", "equivalent", "different"]
     body = [[r["name"], _num(r["truth_mean"], 4), f"{_num(r['bias'])} (± {_num(r['bias_mcse'], 2)})", _num(r["rmse"]),
@@ -154,6 +159,7 @@ def _ate_table(rows: pd.DataFrame) -> str:
 
 
 def _cate_table(rows: pd.DataFrame) -> str:
+    """The CATE rows of the summary: PEHE, AUTOC bias and coverage, verdict shares."""
     header = ["model", "mean PEHE (± MC SE)", "mean true AUTOC", "AUTOC bias", "AUTOC coverage (± MC SE)",
               "equivalent", "different", "indeterminate"]
     body = [[r["name"], f"{_num(r['pehe_mean'])} (± {_num(r['pehe_mcse'], 2)})", _num(r["truth_mean"]),
@@ -164,6 +170,7 @@ def _cate_table(rows: pd.DataFrame) -> str:
 
 
 def _rule_table(rows: pd.DataFrame) -> str:
+    """The rule rows of the summary: true gain, bias, RMSE, coverage, share ``different``."""
     header = ["rule", "mean true gain", "bias of blind gain", "RMSE", "coverage (± MC SE)", "different"]
     body = [[r["name"], _num(r["truth_mean"]), _num(r["bias"]), _num(r["rmse"]), _pct(r["coverage"], r["coverage_mcse"]),
              _pct(r["different"], r["different_mcse"])] for _, r in rows.iterrows()]
@@ -171,12 +178,14 @@ def _rule_table(rows: pd.DataFrame) -> str:
 
 
 def _label(kind: str, name: str, model_prefix: str) -> str:
+    """Row label of a figure: the ATE estimator, or ``model_prefix`` and the model or rule name."""
     if kind == "ate":
         return "ATE design-based (known rates)" if name == "design" else f"ATE {name}"
     return f"{model_prefix} {name}"
 
 
 def _figure(rendered_svg: str, caption: str) -> str:
+    """An inline SVG figure with its caption."""
     return f"<figure>{rendered_svg}<figcaption>{_esc(caption)}</figcaption></figure>"
 
 

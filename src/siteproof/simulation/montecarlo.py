@@ -66,13 +66,14 @@ import pandas as pd
 
 from .. import __version__
 from ..blind.analysis import BlindConfig, run_blind
-from ..unmask.correspondence import VERDICTS
-from ..core.errors import SiteproofError, SiteproofWarning
 from ..blind.evaluation import rank_metric
+from ..core.errors import SiteproofError, SiteproofWarning
 from ..core.outputs import atomic_write_json, atomic_write_text, check_out_dir
-from .simulate import MIN_N, Design, SimulatedTrial, load_design, population_ate, simulate
 from ..intake.study import Study, StudySpec, load_study
 from ..unmask.scoring import Scorecard, claim_verdicts, run_unmask
+from .scenario import MIN_N, Scenario
+from .simulate import SimulatedTrial, load_design, population_ate, simulate
+from .studysummary import summarize
 
 SCHEMA = "siteproof/montecarlo-study"
 VERSION = 1
@@ -99,7 +100,7 @@ class ReplicateTask:
     replicate's own); ``site_learner`` is unmask's site classifier for propensity recovery (None: default).
     """
 
-    design: Design
+    design: Scenario
     n: int
     replicate: int
     seeds: tuple[int, int, int]
@@ -179,6 +180,7 @@ def _row(kind: str, name: str, est: dict[str, Any] | None, truth: float, truth_s
 
 
 def _num(value: Any) -> float:
+    """``value`` as a float, None as NaN."""
     return math.nan if value is None else float(value)
 
 
@@ -198,21 +200,30 @@ def _ate_rows(record: dict[str, Any], card: Scorecard, truth: float, truth_sampl
     return rows
 
 
+def _claim_columns(record: dict[str, Any], units: pd.DataFrame, card: Scorecard, section: str, key: str,
+                   metric: str, label: str) -> Iterator[tuple[str, dict[str, Any], np.ndarray, float, str]]:
+    """Per claim of ``section`` ("cate" or "rules"): its name, the claim, its per-unit column in ``units``
+    (``tau_<model>`` or ``rule_<rule>``), unmask's design-based ``metric`` and the verdict ``label <name>``."""
+    verdicts = dict(claim_verdicts(card))
+    design = {row[key]: row[metric]["design"] for row in card.to_dict()[section]}
+    prefix = {"cate": "tau", "rules": "rule"}[section]
+    for claim in record[section]:
+        name = claim[key]
+        column = units[f"{prefix}_{name}"].to_numpy(dtype=float)
+        yield name, claim, column, _num(design.get(name)), verdicts.get(f"{label} {name}", "")
+
+
 def _cate_rows(record: dict[str, Any], units: pd.DataFrame, card: Scorecard, tau: np.ndarray) -> list[dict[str, Any]]:
     """PEHE of every CATE model; blind AUTOC against the true AUTOC of the same ranking."""
-    verdicts = dict(claim_verdicts(card))
-    design_autoc = {row["model"]: row["autoc"]["design"] for row in card.to_dict()["cate"]}
     rows = []
-    for claim in record["cate"]:
-        model = claim["model"]
-        tau_hat = units[f"tau_{model}"].to_numpy(dtype=float)
+    for model, claim, tau_hat, design_autoc, verdict in _claim_columns(record, units, card, "cate", "model",
+                                                                       "autoc", "CATE"):
         pehe = float(np.sqrt(np.mean((tau_hat - tau) ** 2)))
         if "autoc" not in claim:
             rows.append(_row("cate", model, None, math.nan, math.nan, pehe=pehe))
             continue
         true_autoc = true_rank_metric(tau_hat, tau)
-        rows.append(_row("cate", model, claim["autoc"], true_autoc, true_autoc,
-                         _num(design_autoc.get(model)), verdicts.get(f"CATE {model}", ""), pehe))
+        rows.append(_row("cate", model, claim["autoc"], true_autoc, true_autoc, design_autoc, verdict, pehe))
     return rows
 
 
@@ -227,27 +238,27 @@ def true_rank_metric(tau_hat: np.ndarray, tau: np.ndarray, kind: str = "autoc") 
 
 def _rule_rows(record: dict[str, Any], units: pd.DataFrame, card: Scorecard, tau: np.ndarray) -> list[dict[str, Any]]:
     """Blind gain of each rule against its true gain mean((π − q̂)·τ)."""
-    verdicts = dict(claim_verdicts(card))
-    design_gain = {row["rule"]: row["gain"]["design"] for row in card.to_dict()["rules"]}
     rows = []
-    for claim in record["rules"]:
-        name = claim["rule"]
-        pi = units[f"rule_{name}"].to_numpy(dtype=float)
+    for name, claim, pi, design_gain, verdict in _claim_columns(record, units, card, "rules", "rule", "gain", "rule"):
         truth = float(np.mean((pi - pi.mean()) * tau))
-        rows.append(_row("rule", name, claim["gain"], truth, truth, _num(design_gain.get(name)),
-                         verdicts.get(f"rule {name}", "")))
+        rows.append(_row("rule", name, claim["gain"], truth, truth, design_gain, verdict))
     return rows
 
 
 # ----------------------------------------------------------------------------------------------------------
 # the study folder
 # ----------------------------------------------------------------------------------------------------------
-def design_fingerprint(design: Design) -> str:
-    """sha256 of everything that defines the design's generative model (its file location excluded)."""
-    return hashlib.sha256(repr(dataclasses.replace(design, source="")).encode("utf-8")).hexdigest()
+def design_fingerprint(design: Scenario) -> str:
+    """sha256 of everything that defines the scenario's generative model (its file location excluded).
+
+    The hashed text is the dataclass repr with the class's former name ``Design`` in front, so the study
+    folders written before the class was named ``Scenario`` keep their fingerprint and still resume.
+    """
+    text = repr(dataclasses.replace(design, source=""))
+    return hashlib.sha256(("Design" + text.removeprefix("Scenario")).encode("utf-8")).hexdigest()
 
 
-def study_settings(design: Design, n: int, seed: int, config: BlindConfig) -> dict[str, Any]:
+def study_settings(design: Scenario, n: int, seed: int, config: BlindConfig) -> dict[str, Any]:
     """The settings a study folder is bound to (study.json); a rerun must match them to resume."""
     blind = config.to_dict()
     blind.pop("seed")
@@ -276,6 +287,7 @@ def _open_folder(out: Path, settings: dict[str, Any]) -> dict[str, Any]:
 
 
 def _short(value: Any) -> str:
+    """A setting for an error message: fingerprints cut to 10 characters, tables as sorted JSON."""
     if isinstance(value, str) and len(value) == 64:
         return value[:10] + "…"
     return json.dumps(value, sort_keys=True) if isinstance(value, dict) else str(value)
@@ -331,61 +343,6 @@ def read_replicates(path: Path | str) -> pd.DataFrame:
 
 
 # ----------------------------------------------------------------------------------------------------------
-# summary
-# ----------------------------------------------------------------------------------------------------------
-def _share(flags: pd.Series) -> tuple[float, float, int]:
-    """Share of True among the non-missing flags, its Monte Carlo SE √(p(1−p)/R), and R."""
-    values = flags.dropna().astype(float)
-    r = int(values.size)
-    if r == 0:
-        return math.nan, math.nan, 0
-    p = float(values.mean())
-    return p, math.sqrt(p * (1 - p) / r), r
-
-
-def _mean_se(values: pd.Series) -> tuple[float, float]:
-    v = values.dropna().astype(float).to_numpy()
-    if v.size == 0:
-        return math.nan, math.nan
-    return float(v.mean()), float(v.std(ddof=1) / math.sqrt(v.size)) if v.size > 1 else math.nan
-
-
-def summarize(frame: pd.DataFrame) -> pd.DataFrame:
-    """One row per (kind, name), in order of first appearance.
-
-    Over the R replicates with a value: mean truth and estimate; bias = mean(error) with its Monte Carlo SE
-    sd(error)/√R; RMSE = √mean(error²); sd of the estimate and the mean reported SE (their ratio checks the SE);
-    coverage of the population truth and of the sample truth, each with its Monte Carlo SE √(p(1−p)/R);
-    the share of each verdict (``different`` with its Monte Carlo SE); mean PEHE with its Monte Carlo SE.
-    """
-    out = []
-    for (kind, name), group in frame.groupby(["kind", "name"], sort=False):
-        error = group["error"].dropna()
-        bias, bias_se = _mean_se(error)
-        coverage, coverage_se, r_cov = _share(group["covered"])
-        coverage_s, coverage_s_se, _ = _share(group["covered_sample"])
-        verdicts = group["verdict"][group["verdict"] != ""]
-        pehe, pehe_se = _mean_se(group["pehe"])
-        row = {
-            "kind": kind, "name": name, "replicates": int(group["replicate"].nunique()),
-            "truth_mean": float(group["truth"].mean()), "estimate_mean": float(group["estimate"].mean()),
-            "bias": bias, "bias_mcse": bias_se,
-            "rmse": float(np.sqrt(np.mean(error.to_numpy() ** 2))) if error.size else math.nan,
-            "sd_estimate": float(group["estimate"].std(ddof=1)) if group["estimate"].notna().sum() > 1 else math.nan,
-            "se_mean": float(group["se"].mean()),
-            "coverage": coverage, "coverage_mcse": coverage_se, "coverage_replicates": r_cov,
-            "coverage_sample": coverage_s, "coverage_sample_mcse": coverage_s_se,
-        }
-        for verdict in VERDICTS:
-            row[verdict.replace(" ", "_")] = float((verdicts == verdict).mean()) if verdicts.size else math.nan
-        row["different_mcse"] = _share(verdicts == "different")[1] if verdicts.size else math.nan
-        row["verdict_replicates"] = int(verdicts.size)
-        row["pehe_mean"], row["pehe_mcse"] = pehe, pehe_se
-        out.append(row)
-    return pd.DataFrame(out)
-
-
-# ----------------------------------------------------------------------------------------------------------
 # execution back ends
 # ----------------------------------------------------------------------------------------------------------
 @contextmanager
@@ -406,6 +363,7 @@ def _single_threaded_children() -> Iterator[None]:
 
 
 def _run_here(tasks: list[ReplicateTask]) -> Iterator[ReplicateResult]:
+    """The replicates one after the other in this process."""
     for task in tasks:
         yield run_replicate(task)
 
@@ -426,6 +384,7 @@ def _run_processes(tasks: list[ReplicateTask], workers: int) -> Iterator[Replica
 
 
 def _lost_worker(replicate: int | None, detail: str = "") -> SiteproofError:
+    """The error when a worker process dies, naming the replicate it was running."""
     where = f" while running replicate {replicate}" if replicate is not None else ""
     return SiteproofError(
         f"a worker process died{where}{detail}",
@@ -476,6 +435,7 @@ def _dask_client(workers: int, scheduler: str) -> Iterator[Any]:
 
 
 def _results(tasks: list[ReplicateTask], workers: int, scheduler: str | None) -> Iterator[ReplicateResult]:
+    """Replicate results from the back end the arguments ask for (Dask, local processes or this process)."""
     if scheduler is not None:
         return _run_dask(tasks, workers, scheduler)
     if workers > 1 and len(tasks) > 1:
@@ -508,6 +468,7 @@ class StudyResult:
 
 
 def _check_arguments(replicates: int, n: int | None, workers: int, seed: int, scheduler: str | None) -> None:
+    """Refuse counts, sizes, seeds and scheduler addresses that cannot run, naming the command-line option."""
     def whole(value: Any) -> bool:
         return isinstance(value, (int, np.integer)) and not isinstance(value, bool)
 
@@ -525,7 +486,7 @@ def _check_arguments(replicates: int, n: int | None, workers: int, seed: int, sc
 
 
 def run_study(
-    design: str | Path | Design,
+    design: str | Path | Scenario,
     replicates: int,
     out: str | Path,
     *,
@@ -540,8 +501,8 @@ def run_study(
 ) -> StudyResult:
     """Run (or resume) a Monte Carlo design study of ``replicates`` replicates into the folder ``out``.
 
-    ``design``: a shipped design name, a design TOML path or a loaded :class:`Design`; ``n``: units per
-    replicate (default: the design's ``default_n``); ``workers``: local processes, or LocalCluster workers with
+    ``design``: a shipped scenario name, a scenario TOML path or a loaded :class:`Scenario`; ``n``: units per
+    replicate (default: the scenario's ``default_n``); ``workers``: local processes, or LocalCluster workers with
     ``scheduler = "local"``; ``scheduler``: None (local processes), ``"local"`` or a Dask scheduler address;
     ``seed``: the study seed (same seed ⇒ identical replicates.csv); ``config``: the blind settings and
     learners (default ``BlindConfig()``; tests pass fast learners); ``site_learner``: unmask's site classifier;
@@ -549,7 +510,7 @@ def run_study(
     ``progress("replicates", total)`` and used as a context manager yielding ``tick(label)``.
     """
     _check_arguments(replicates, n, workers, seed, scheduler)
-    design = design if isinstance(design, Design) else load_design(design)
+    design = design if isinstance(design, Scenario) else load_design(design)
     n = design.default_n if n is None else int(n)
     config = config or BlindConfig()
     config.validate()
@@ -588,5 +549,6 @@ def run_study(
 
 @contextmanager
 def _quiet(description: str, total: int) -> Iterator[Tick]:
+    """The progress factory that shows nothing."""
     yield lambda label="": None
 

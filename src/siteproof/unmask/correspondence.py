@@ -1,7 +1,8 @@
 """Scoring a blind claim against its design-based counterpart: paired differences, TOST and verdicts.
 
 A blind estimate and the design-based estimate of the same number are computed on the same units, so their
-errors are correlated.  Both are means of per-unit scores, hence (design.md point 4)
+errors are correlated.  Both are means of per-unit scores, so the SE of their difference comes from the
+per-unit differences of the scores
 
     D = mean(Γ_blind − Γ_design),   SE(D) = sd(Γ_blind − Γ_design)/√n,
 
@@ -28,14 +29,10 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import stats
 
+from ..core.checks import alpha_level, at_least, finite_vector, same_length, standard_error
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate, normal_ci
-
-EQUIVALENT = "equivalent"
-DIFFERENT = "different"
-TRIVIALLY_DIFFERENT = "trivially different"
-INDETERMINATE = "indeterminate"
-VERDICTS = (EQUIVALENT, DIFFERENT, TRIVIALLY_DIFFERENT, INDETERMINATE)
+from ..core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, VERDICTS
 
 
 @dataclass(frozen=True)
@@ -81,13 +78,9 @@ def paired_difference(
     """D = mean(Γ_b − Γ_d), SE = sd(Γ_b − Γ_d)/√n (n − 1 divisor), 95% Wald CI; scores are Γ_b − Γ_d."""
     blind = _score_array(scores_blind, "blind")
     design = _score_array(scores_design, "design")
-    if blind.size != design.size:
-        raise SiteproofError(
-            f"{blind.size} blind scores but {design.size} design scores",
-            "pass per-unit scores of the same units, in the same order, for both estimates",
-        )
-    if blind.size < 2:
-        raise SiteproofError("a paired difference needs at least 2 units", "score more units")
+    same_length("blind scores", blind, "design scores", design,
+                "pass per-unit scores of the same units, in the same order, for both estimates")
+    at_least("a paired difference", blind, 2, "score more units")
     return Estimate.from_scores("blind − design", blind - design, estimand="difference")
 
 
@@ -208,18 +201,12 @@ def _comparison(blind: float, design: float, difference: Estimate, margin: float
 
 
 def _score_array(scores: Any, which: str) -> np.ndarray:
-    arr = np.asarray(scores, dtype=float).ravel()
-    if not np.all(np.isfinite(arr)):
-        raise SiteproofError(
-            f"the {which} scores contain NaN or infinite values",
-            "drop the affected units from both score vectors (keep them paired) or fix the nuisance estimates",
-        )
-    return arr
+    return finite_vector(f"the {which} scores", scores,
+                         "drop the affected units from both score vectors (keep them paired) or fix the nuisance estimates")
 
 
 def _check_se(se: float) -> None:
-    if not np.isfinite(se) or se < 0:
-        raise SiteproofError(f"the SE of the difference must be finite and ≥ 0, got {se}", "check how it was computed")
+    standard_error("the SE of the difference", se)
 
 
 def _check_margin_alpha(margin: float, alpha: float) -> None:
@@ -228,5 +215,4 @@ def _check_margin_alpha(margin: float, alpha: float) -> None:
             f"the equivalence margin must be a positive number, got {margin}",
             "set --margin to the smallest difference that matters (default: 0.1 × SD of the outcome)",
         )
-    if not 0.0 < alpha < 0.5:
-        raise SiteproofError(f"alpha must lie in (0, 0.5), got {alpha}", "use e.g. alpha=0.05")
+    alpha_level(alpha, upper=0.5)

@@ -32,16 +32,19 @@ from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
+import pandas as pd
 from scipy import optimize, stats
 
+from ..core.checks import finite_vector, same_length
 from ..core.errors import SiteproofError
 from ..core.estimates import normal_ci
+from ..core.results import ResultsMixin
 
 METHODS = ("reml", "dl")
 
 
-@dataclass(frozen=True)
-class RandomEffectsResult:
+@dataclass(frozen=True, repr=False)
+class RandomEffectsResult(ResultsMixin):
     """A random-effects meta-analysis: pooled mean, between-site variance and heterogeneity statistics.
 
     ``i2`` is in percent (Higgins & Thompson 2002) and computed from this method's τ̂² (see module docstring);
@@ -64,6 +67,24 @@ class RandomEffectsResult:
     fixed_estimate: float
     fixed_se: float
     note: str = ""
+
+    def _key_numbers(self) -> dict[str, Any]:
+        return {"method": self.method, "k": self.k, "estimate": self.estimate, "se": self.se, "tau2": self.tau2,
+                "i2": self.i2, "q_pvalue": self.q_pvalue}
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per quantity: pooled mean, τ², Cochran's Q (``statistic``, ``p_value``), I² (%), the 95 %
+        prediction interval and the fixed-effect mean."""
+        nan = float("nan")
+        rows = [
+            ("pooled mean", self.estimate, self.se, *self.ci, nan, nan),
+            ("tau2", self.tau2, self.tau2_se, nan, nan, nan, nan),
+            ("Q", nan, nan, nan, nan, self.q, self.q_pvalue),
+            ("I2 (%)", self.i2, nan, nan, nan, nan, nan),
+            ("prediction interval", nan, nan, *self.prediction_interval, nan, nan),
+            ("fixed-effect mean", self.fixed_estimate, self.fixed_se, nan, nan, nan, nan),
+        ]
+        return pd.DataFrame(rows, columns=["quantity", "estimate", "se", "ci_low", "ci_high", "statistic", "p_value"])
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (non-finite values stay NaN; ``outputs`` writes them as null)."""
@@ -209,18 +230,13 @@ def _check_inputs(estimates: Any, variances: Any, method: str) -> tuple[np.ndarr
         raise SiteproofError(f"unknown random-effects method {method!r}", f"use one of {', '.join(METHODS)}")
     y = np.asarray(estimates, dtype=float).ravel()
     v = np.asarray(variances, dtype=float).ravel()
-    if y.size != v.size:
-        raise SiteproofError(
-            f"{y.size} estimates but {v.size} variances",
-            "pass one within-site variance (squared SE) per site estimate",
-        )
+    same_length("estimates", y, "variances", v, "pass one within-site variance (squared SE) per site estimate")
     if y.size < 2:
         raise SiteproofError(
             f"a random-effects meta-analysis needs at least 2 site estimates, got {y.size}",
             "include more sites (sites need at least 2 units in each arm to give an estimate)",
         )
-    if not np.all(np.isfinite(y)):
-        raise SiteproofError("some site estimates are NaN or infinite", "drop those sites or fix their data")
+    finite_vector("the site estimates", y, "drop those sites or fix their data")
     if not np.all(np.isfinite(v)) or np.any(v <= 0):
         raise SiteproofError(
             "within-site variances must be finite and strictly positive",

@@ -1,7 +1,7 @@
 """How well did the blind analysis recover the assignment mechanism? The learned ê judged against the known rates.
 
 With the site hidden, the blind propensity targets the *mixture* e(x) = P(W = 1 | X = x) = E[e_S | X = x]
-(design.md point 2), not the site rate e_S.  Three facts follow and drive every figure here:
+(averaged over the sites a unit with covariates x can come from), not the site rate e_S.  Three facts follow and drive every figure here:
 
 * **Calibration is the right yardstick.**  For a correct ê (a function of x only),
       E[e_S | ê(X)] = E[ E[e_S | X] | ê(X) ] = E[e(X) | ê(X)] = ê(X),
@@ -34,6 +34,7 @@ from sklearn.base import ClassifierMixin, clone
 from sklearn.ensemble import RandomForestClassifier
 from sklearn.model_selection import KFold, StratifiedKFold, cross_val_predict
 
+from ..core.checks import at_least, in_unit_interval, same_length
 from ..core.errors import SiteproofError
 from ..blind.average import kish_ess
 from ..core.estimates import Estimate, normal_ci
@@ -318,7 +319,7 @@ def recover_propensity(
     seed: int = 0,
     site_learner: ClassifierMixin | None = None,
 ) -> PropensityRecovery:
-    """All propensity-recovery figures (issue 4 item 3).  Pass ``X`` to add the site-predictability check and
+    """All propensity-recovery figures: calibration, RMSE, weights and site predictability.  Pass ``X`` to add the site-predictability check and
     the estimated RMSE floor; without it both are omitted (floor NaN)."""
     e_hat, known_rate = _pair(e_hat, known_rate)
     site = np.asarray(site).astype(str)
@@ -346,18 +347,11 @@ def recover_propensity(
 def _pair(e_hat: np.ndarray, known_rate: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     e_hat = np.asarray(e_hat, dtype=float).ravel()
     known_rate = np.asarray(known_rate, dtype=float).ravel()
-    if e_hat.size != known_rate.size:
-        raise SiteproofError(
-            f"{e_hat.size} learned propensities but {known_rate.size} known rates",
-            "pass both for the same units in the same order",
-        )
-    if e_hat.size < 2:
-        raise SiteproofError("propensity recovery needs at least 2 units", "score more units")
-    if np.any((e_hat <= 0) | (e_hat >= 1)) or np.any((known_rate <= 0) | (known_rate >= 1)):
-        raise SiteproofError(
-            "propensities and known rates must lie strictly inside (0, 1)",
-            "clip ê and restrict the comparison to sites whose rate is strictly between 0 and 1",
-        )
+    same_length("learned propensities", e_hat, "known rates", known_rate, "pass both for the same units in the same order")
+    at_least("propensity recovery", e_hat, 2, "score more units")
+    fix = "clip ê and restrict the comparison to sites whose rate is strictly between 0 and 1"
+    in_unit_interval("learned propensities", e_hat, fix, strict=True)
+    in_unit_interval("known rates", known_rate, fix, strict=True)
     return e_hat, known_rate
 
 

@@ -1,8 +1,8 @@
 """Unmasking: every blind claim scored against the sites' randomization → :class:`Scorecard`.
 
 The blind analysis never saw the site.  Here the site labels and the known assignment rates e_S come back,
-and each claim is compared with a design-based counterpart computed **on the same units** (design.md points
-1–5; formulas and references in docs/methods-unmask.md):
+and each claim is compared with a design-based counterpart computed **on the same units** (formulas and
+references in docs/methods-unmask.md):
 
 * **Average effect.**  Truth: the pooled design-based ATE Σ_s (n_s/n)·DiM_s over the included units (sites
   with ≥ 2 units per arm), with per-unit scores ψ_design (``design.design_ate``).  Each blind estimator has
@@ -13,7 +13,7 @@ and each claim is compared with a design-based counterpart computed **on the sam
   side's cross-fitted outcome models from the sidecar,
       Γ_design,i = μ̂₁(x_i) − μ̂₀(x_i) + W_i(Y_i − μ̂₁(x_i))/e_{S_i} − (1 − W_i)(Y_i − μ̂₀(x_i))/(1 − e_{S_i}).
   μ̂₀, μ̂₁ are functions of x only and out-of-fold, so with the known e_S the score is unbiased for τ(X, S)
-  (design.md point 3) and no model is refit.  CATE rankings, groups, BLP, AUTOC/Qini, R-loss and rules are
+  and no model is refit.  CATE rankings, groups, BLP, AUTOC/Qini, R-loss and rules are
   re-scored with it (or with the known-rate IPW arm scores), beside the blind value, with paired SEs.
 * **Propensity recovery** (``recovery``), **between-site meta-analysis** (``heterogeneity``) and optional
   **leave-one-site-out transport** (``transport``).
@@ -23,19 +23,16 @@ Everything is computed on the included units; excluded sites are listed in the w
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .. import __version__
 from ..blind.analysis import BlindConfig
+from ..blind.claims import Claims, rule_column, score_column, tau_column
 from .correspondence import (
-    DIFFERENT,
-    EQUIVALENT,
-    TRIVIALLY_DIFFERENT,
     Comparison,
     compare,
     compare_scores,
@@ -46,16 +43,25 @@ from .correspondence import (
 from ..intake.sitetrials import DesignATE, design_ate, naive_ate, site_table
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
+from ..core.interpret import (
+    DIFFERENT,
+    NOT_RECOVERED,
+    RECOVERED,
+    RECOVERY_CLASSES,
+    claim_recovery,
+    estimator_label,
+    headline_ate_verdict,
+    propensity_recovered,
+)
 from ..blind.evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
 from .heterogeneity import RandomEffectsResult, random_effects
-from .recovery import PropensityRecovery, recover_propensity
-from ..blind.rules import RuleValue, rule_value, rule_value_by_group
+from .recovery import recover_propensity
+from ..blind.rules import rule_value, rule_value_by_group
 from ..core.scores import arm_scores
 from ..intake.study import Study
-from .transport import TransportResult, leave_one_site_out
+from .scorecard import AteComparison, CateComparison, RuleComparison, Scorecard
+from .transport import leave_one_site_out
 
-SCHEMA = "siteproof/scorecard"
-VERSION = 1
 ALPHA = 0.05
 PRIMARY_ESTIMATOR = "aipw"
 CROSS_ESTIMAND = "overlap"
@@ -63,221 +69,6 @@ Tick = Callable[[str], None]
 
 MISMATCH_WHAT = "claims were made on another dataset"
 MISMATCH_FIX = "rerun blind on this file or point unmask at the right data"
-
-
-# --------------------------------------------------------------------------------------------------------
-# result objects
-# --------------------------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class AteComparison:
-    """One blind ATE estimator scored against the pooled design-based ATE (paired on the included units).
-
-    ``same_estimand`` is set for the overlap-weighted estimator only: its comparison with the design-based
-    estimate of the *same* overlap-weighted effect (see :func:`overlap_design_scores`).
-    """
-
-    estimator: str
-    estimand: str
-    claimed: dict[str, Any]
-    blind: Estimate
-    design: Estimate
-    comparison: Comparison
-    percent_bias_reduction: float
-    note: str = ""
-    same_estimand: Comparison | None = None
-
-    @property
-    def verdict(self) -> str:
-        return self.comparison.verdict
-
-    def to_dict(self) -> dict[str, Any]:
-        c = self.comparison
-        out: dict[str, Any] = {
-            "estimator": self.estimator,
-            "estimand": self.estimand,
-            "claimed": self.claimed,
-            "blind": _estimate_dict(self.blind),
-            "design": _estimate_dict(self.design),
-            "difference": c.difference.to_dict(),
-            "z": c.z,
-            "p_value": c.p_value,
-            "p_equivalence": c.p_equivalence,
-            "equivalence_ci": list(c.equivalence_ci),
-            "verdict": c.verdict,
-            "percent_bias_reduction": self.percent_bias_reduction,
-        }
-        if self.note:
-            out["note"] = self.note
-        if self.same_estimand is not None:
-            out["same_estimand"] = self.same_estimand.to_dict()
-        return out
-
-
-@dataclass(frozen=True)
-class CateComparison:
-    """Every heterogeneity figure of one CATE model, blind (ê, blind AIPW scores) beside design (e_S, oracle
-    AIPW scores), each with its paired difference and (where a margin applies) a verdict."""
-
-    model: str
-    n: int
-    tau_sd: float
-    high_low: Comparison
-    gates: list[Comparison]
-    top_minus_bottom: Comparison
-    blp_blind: BlpResult | None
-    blp_design: BlpResult | None
-    beta2: Comparison | None
-    autoc: Comparison
-    qini: Comparison
-    toc_curve: dict[str, Any]
-    cost_curve: dict[str, Any] | None
-    r_loss_blind: Estimate
-    r_loss_design: Estimate
-    r_loss_difference: Estimate
-    heterogeneity: dict[str, Any]
-
-    @property
-    def verdict(self) -> str:
-        """The model's headline verdict: its AUTOC (the ranking claim) against the design-based AUTOC."""
-        return self.autoc.verdict
-
-    def comparisons(self) -> list[Comparison]:
-        """Every comparison of this model that carries a verdict."""
-        out = [self.high_low, self.top_minus_bottom, self.autoc, self.qini, *self.gates]
-        return out + ([self.beta2] if self.beta2 is not None else [])
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "model": self.model,
-            "n": self.n,
-            "tau_sd": self.tau_sd,
-            "verdict": self.verdict,
-            "high_low": self.high_low.to_dict(),
-            "gates": [{"group": g + 1, **c.to_dict()} for g, c in enumerate(self.gates)],
-            "top_minus_bottom": self.top_minus_bottom.to_dict(),
-            "blp": {
-                "blind": None if self.blp_blind is None else self.blp_blind.to_dict(),
-                "design": None if self.blp_design is None else self.blp_design.to_dict(),
-                "beta2": None if self.beta2 is None else self.beta2.to_dict(),
-                "beta2_margin_note": "margin δ/sd(τ̂): β₂·sd(τ̂) is the SD of the best linear predictor "
-                "of the effect, in outcome units",
-            },
-            "autoc": {**self.autoc.to_dict(), "curve": self.toc_curve},
-            "qini": self.qini.to_dict(),
-            "cost_curve": self.cost_curve,
-            "r_loss": {
-                "blind": self.r_loss_blind.to_dict(),
-                "design": self.r_loss_design.to_dict(),
-                "difference": self.r_loss_difference.to_dict(),
-                "note": "R-loss difference from the constant model (negative: τ̂ beats a constant effect); "
-                "squared outcome units, so no margin and no verdict — difference test only",
-            },
-            "heterogeneity": self.heterogeneity,
-        }
-
-
-@dataclass(frozen=True)
-class RuleComparison:
-    """A learned treatment rule: its blind value and gain against the design-based ones (known rates)."""
-
-    rule: str
-    model: str | None
-    kind: str
-    budget: float | None
-    treated_share: float
-    claimed: dict[str, Any]
-    value: Comparison
-    gain: Comparison
-    oracle: RuleValue
-    ipw: RuleValue
-    by_site: pd.DataFrame
-
-    @property
-    def has_contrast(self) -> bool:
-        """False when the rule treats everyone or no one: its gain is then 0 by construction."""
-        return 0.0 < self.treated_share < 1.0
-
-    @property
-    def verdict(self) -> str:
-        """The rule's verdict: blind gain over random allocation against the oracle-AIPW gain — or, for a
-        rule that treats everyone or no one (gain ≡ 0 on both sides), its value."""
-        return self.gain.verdict if self.has_contrast else self.value.verdict
-
-    @property
-    def sites_agreeing(self) -> tuple[int, int]:
-        """(sites whose design gain has the sign of the blind gain, sites with a contrast)."""
-        rows = self.by_site[self.by_site["sign_agrees"].notna()]
-        return int(rows["sign_agrees"].astype(bool).sum()), int(len(rows))
-
-    def to_dict(self) -> dict[str, Any]:
-        agree, total = self.sites_agreeing
-        return {
-            "rule": self.rule,
-            "model": self.model,
-            "kind": self.kind,
-            "budget": self.budget,
-            "treated_share": self.treated_share,
-            "claimed": self.claimed,
-            "verdict": self.verdict,
-            "verdict_on": "gain" if self.has_contrast else "value (the rule treats everyone or no one)",
-            "value": self.value.to_dict(),
-            "gain": self.gain.to_dict(),
-            "design_oracle_aipw": self.oracle.to_dict(),
-            "design_ipw_known_rate": self.ipw.to_dict(),
-            "sites_agreeing": agree,
-            "sites_with_contrast": total,
-            "by_site": _records(self.by_site),
-        }
-
-
-@dataclass
-class Scorecard:
-    """Everything unmasking found; :meth:`to_dict` is the content of ``scorecard.json`` (docs/scorecard-format.md)."""
-
-    study: dict[str, Any]
-    rates_source: str
-    sites: pd.DataFrame
-    design: DesignATE
-    oracle: Estimate
-    naive: Estimate
-    ate: list[AteComparison]
-    propensity: PropensityRecovery
-    meta_dl: RandomEffectsResult | None
-    meta_reml: RandomEffectsResult | None
-    cate: list[CateComparison]
-    rules: list[RuleComparison]
-    headline: str
-    warnings: list[str] = field(default_factory=list)
-    transport: TransportResult | None = None
-
-    @property
-    def margin(self) -> float:
-        return float(self.study["margin"])
-
-    def to_dict(self) -> dict[str, Any]:
-        """The scorecard.json content (schema ``siteproof/scorecard`` version 1)."""
-        return {
-            "schema": SCHEMA,
-            "version": VERSION,
-            "siteproof_version": __version__,
-            "headline": self.headline,
-            "rates_source": self.rates_source,
-            "study": self.study,
-            "sites": _records(self.sites),
-            "design_ate": {**self.design.to_dict(), "estimator": "pooled difference in means by site"},
-            "design_oracle_aipw": {
-                **self.oracle.to_dict(),
-                "note": "known rates with the blind side's cross-fitted outcome models (efficient design-based)",
-            },
-            "naive_ate": self.naive.to_dict(),
-            "ate": [row.to_dict() for row in self.ate],
-            "propensity": self.propensity.to_dict(),
-            "heterogeneity": _meta_dict(self.meta_dl, self.meta_reml),
-            "cate": [row.to_dict() for row in self.cate],
-            "rules": [row.to_dict() for row in self.rules],
-            "transport": None if self.transport is None else self.transport.to_dict(),
-            "warnings": list(self.warnings),
-        }
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -294,7 +85,7 @@ def check_claims_match(study: Study, claims: dict[str, Any], units: pd.DataFrame
             "the per-unit sidecar lists other units, or the same units in another order, than the data",
             "rerun blind on this file so that claims.json and units.parquet come from the same run",
         )
-    required = ["e_hat", "mu0", "mu1", "m_hat", "score_aipw"]
+    required = ["e_hat", "mu0", "mu1", "m_hat", score_column("aipw")]
     missing = [c for c in required if c not in units]
     if missing:
         raise SiteproofError(
@@ -358,7 +149,7 @@ class _Units:
         return g1 - g0
 
     def blind_scores(self, estimator: str = PRIMARY_ESTIMATOR) -> np.ndarray:
-        return self.sidecar[f"score_{estimator}"].to_numpy(dtype=float)
+        return self.sidecar[score_column(estimator)].to_numpy(dtype=float)
 
     def m_star(self) -> np.ndarray:
         """m*(x, S) = μ̂₀ + e_S(μ̂₁ − μ̂₀): the known-rate analogue of m̂ = E[Y | X] for the R-loss."""
@@ -404,7 +195,7 @@ def _ate_comparisons(claims: dict[str, Any], u: _Units, truth: DesignATE, margin
     naive_bias = None
     for claim in claims.get("ate", []):
         name = claim["estimator"]
-        if f"score_{name}" not in u.sidecar:
+        if score_column(name) not in u.sidecar:
             continue
         scores = u.blind_scores(name)
         comp = compare_scores(scores, design_psi, margin, ALPHA)
@@ -522,7 +313,7 @@ def _heterogeneity_status(
 def _cate_comparison(
     key: str, claim: dict[str, Any], u: _Units, tau_const: np.ndarray, settings: dict[str, Any], margin: float
 ) -> CateComparison:
-    tau = u.sidecar[f"tau_{key}"].to_numpy(dtype=float)
+    tau = u.sidecar[tau_column(key)].to_numpy(dtype=float)
     blind, design = u.blind_scores(), u.oracle_scores()
     k = int(settings.get("gates_groups", 5))
     n_boot, seed = int(settings.get("n_boot", 200)), int(settings.get("seed", 0))
@@ -581,7 +372,7 @@ def _rule_by_site(pi: np.ndarray, u: _Units, blind_gain: float) -> pd.DataFrame:
 
 
 def _rule_comparison(claim: dict[str, Any], u: _Units, margin: float) -> RuleComparison:
-    pi = u.sidecar[f"rule_{claim['rule']}"].to_numpy(dtype=float)
+    pi = u.sidecar[rule_column(claim["rule"])].to_numpy(dtype=float)
     blind = rule_value(pi, *u.blind_arms(), u.cost)
     oracle = rule_value(pi, *u.oracle_arms(), u.cost)
     ipw = rule_value(pi, *u.ipw_arms(), u.cost)
@@ -618,29 +409,13 @@ def _meta_analysis(sites: pd.DataFrame) -> tuple[RandomEffectsResult | None, Ran
     return random_effects(est, var, "dl"), random_effects(est, var, "reml"), ""
 
 
-def _meta_dict(dl: RandomEffectsResult | None, reml: RandomEffectsResult | None) -> dict[str, Any] | None:
-    """Contract keys (q, q_pvalue, i2, tau2_dl, tau2_reml, estimate, prediction_interval) from the REML fit
-    (I² and the mean) plus both full fits."""
-    if dl is None or reml is None:
-        return None
-    return {
-        "k": reml.k, "q": reml.q, "q_df": reml.q_df, "q_pvalue": reml.q_pvalue,
-        "i2": reml.i2, "i2_dl": dl.i2, "tau2_dl": dl.tau2, "tau2_reml": reml.tau2,
-        "estimate": reml.estimate, "se": reml.se, "ci": list(reml.ci),
-        "prediction_interval": list(reml.prediction_interval),
-        "note": "random-effects mean, I² and prediction interval from REML; inputs are the per-site differences "
-        "in means and their Neyman variances" + (f"; {reml.note}" if reml.note else ""),
-        "dl": dl.to_dict(), "reml": reml.to_dict(),
-    }
-
-
 # --------------------------------------------------------------------------------------------------------
 # orchestration
 # --------------------------------------------------------------------------------------------------------
 def run_unmask(
     study: Study,
-    claims: dict[str, Any],
-    units: pd.DataFrame,
+    claims: Claims | dict[str, Any],
+    units: pd.DataFrame | None = None,
     *,
     margin: float | None = None,
     seed: int = 0,
@@ -650,7 +425,10 @@ def run_unmask(
     blind_config: BlindConfig | None = None,
     site_learner: Any = None,
 ) -> Scorecard:
-    """Score every blind claim against the sites' randomization (issue 4; docs/methods-unmask.md).
+    """Score every blind claim against the sites' randomization (docs/methods-unmask.md).
+
+    ``claims`` is the :class:`~siteproof.blind.claims.Claims` object of the blind run (its per-unit table is
+    used), or a ``claims.json`` record together with its per-unit table ``units``.
 
     ``margin`` is the equivalence margin δ in outcome units (default 0.1 × SD of the outcome, a common
     practice).  ``seed`` drives the site classifier's folds; bootstrap draws reuse the blind run's seed so
@@ -660,6 +438,7 @@ def run_unmask(
     recovery (default: ``recovery.default_site_learner``, a random forest).
     """
     tick = progress or (lambda label="": None)
+    claims, units = _claims_and_units(claims, units)
     check_claims_match(study, claims, units)
     data = study.blind
     margin_source = "user" if margin is not None else "default: 0.1 × SD of the outcome (common practice)"
@@ -685,10 +464,10 @@ def run_unmask(
     cate = [
         _cate_comparison(c["model"], c, u, tau_const, settings, margin)
         for c in claims.get("cate", [])
-        if c["model"] != "constant" and f"tau_{c['model']}" in u.sidecar
+        if c["model"] != "constant" and tau_column(c["model"]) in u.sidecar
     ]
     tick("heterogeneity")
-    rules = [_rule_comparison(c, u, margin) for c in claims.get("rules", []) if f"rule_{c['rule']}" in u.sidecar]
+    rules = [_rule_comparison(c, u, margin) for c in claims.get("rules", []) if rule_column(c["rule"]) in u.sidecar]
     tick("rules")
 
     moved = None
@@ -696,7 +475,7 @@ def run_unmask(
         moved = leave_one_site_out(
             data, study.site, study.known_rate, units["mu0"].to_numpy(float), units["mu1"].to_numpy(float),
             blind_config or config_from_settings(settings),
-            tau_full={c.model: units[f"tau_{c.model}"].to_numpy(float) for c in cate},
+            tau_full={c.model: units[tau_column(c.model)].to_numpy(float) for c in cate},
             workers=workers, progress=tick,
         )
 
@@ -737,8 +516,8 @@ def claim_verdicts(scorecard: Scorecard) -> list[tuple[str, str]]:
     same-estimand comparison), each CATE model (AUTOC) and each rule (gain)."""
     out = []
     for row in scorecard.ate:
-        comp = row.same_estimand if row.same_estimand is not None else row.comparison
-        out.append((f"ATE {row.estimator}", comp.verdict))
+        same = row.same_estimand.verdict if row.same_estimand is not None else None
+        out.append((f"ATE {row.estimator}", headline_ate_verdict(row.comparison.verdict, same)))
     out += [(f"CATE {row.model}", row.verdict) for row in scorecard.cate]
     out += [(f"rule {row.rule}", row.verdict) for row in scorecard.rules]
     return out
@@ -749,29 +528,27 @@ def any_different(scorecard: Scorecard) -> bool:
     return any(v == DIFFERENT for _, v in claim_verdicts(scorecard))
 
 
-def _recovered(verdict: str) -> str:
-    return {EQUIVALENT: "recovered", TRIVIALLY_DIFFERENT: "recovered", DIFFERENT: "not recovered"}.get(
-        verdict, "undetermined"
-    )
-
-
 def headline(scorecard: Scorecard) -> str:
-    """One sentence: what the blind analysis recovered, what it did not, and what stays undetermined."""
-    parts: dict[str, list[str]] = {"recovered": [], "not recovered": [], "undetermined": []}
+    """One sentence: what the blind analysis recovered, what it did not, and what stays indeterminate.
+
+    Classes and rules: :func:`~siteproof.core.interpret.claim_recovery` for each claim's verdict and
+    :func:`~siteproof.core.interpret.propensity_recovered` for the calibration slope of ê.
+    """
+    parts: dict[str, list[str]] = {key: [] for key in RECOVERY_CLASSES}
     primary = next((r for r in scorecard.ate if r.estimator == PRIMARY_ESTIMATOR), None)
     if primary is not None:
         c = primary.comparison
-        parts[_recovered(c.verdict)].append(
-            f"the average effect (blind AIPW {c.blind:.3g} vs design {c.design:.3g})"
+        parts[claim_recovery(c.verdict)].append(
+            f"the average effect (blind {estimator_label(PRIMARY_ESTIMATOR)} {c.blind:.3g} vs design {c.design:.3g})"
         )
     slope = scorecard.propensity.calibration_slope
     if np.isfinite(slope.estimate):
-        ok = slope.ci[0] <= 1.0 <= slope.ci[1] or abs(slope.estimate - 1.0) <= 0.1
-        parts["recovered" if ok else "not recovered"].append(f"the propensity calibration (slope {slope.estimate:.2f})")
+        ok = propensity_recovered(slope.estimate, slope.ci)
+        parts[RECOVERED if ok else NOT_RECOVERED].append(f"the propensity calibration (slope {slope.estimate:.2f})")
     for label, rows in (("effect rankings", scorecard.cate), ("rule gains", scorecard.rules)):
         by_class: dict[str, int] = {}
         for row in rows:
-            key = _recovered(row.verdict)
+            key = claim_recovery(row.verdict)
             by_class[key] = by_class.get(key, 0) + 1
         for key, count in by_class.items():
             parts[key].append(f"{count} of {len(rows)} {label}")
@@ -783,22 +560,18 @@ def headline(scorecard: Scorecard) -> str:
 # --------------------------------------------------------------------------------------------------------
 # small helpers
 # --------------------------------------------------------------------------------------------------------
-def _estimate_dict(est: Estimate) -> dict[str, Any]:
-    return {"estimate": est.estimate, "se": est.se, "ci": [est.ci[0], est.ci[1]]}
+def _claims_and_units(
+    claims: Claims | dict[str, Any], units: pd.DataFrame | None
+) -> tuple[dict[str, Any], pd.DataFrame]:
+    """The claims record and the per-unit table, from a Claims object or a (record, units) pair."""
+    if isinstance(claims, Claims):
+        return claims.to_dict(), claims.units if units is None else units
+    if units is None:
+        raise SiteproofError("the per-unit table of the claims is missing", "pass the Claims object run_blind returned")
+    return claims, units
 
 
 def _claim_summary(claim: dict[str, Any]) -> dict[str, Any]:
     """The figures of a claim as written in claims.json (estimate/se/ci, or value/gain for rules)."""
     keys = ("estimate", "se", "ci", "value", "gain", "treated_share")
     return {k: claim[k] for k in keys if k in claim}
-
-
-def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    def plain(v: Any) -> Any:
-        if isinstance(v, np.generic):
-            v = v.item()
-        if isinstance(v, float) and not np.isfinite(v):
-            return None
-        return v
-
-    return [{k: plain(v) for k, v in row.items()} for row in frame.to_dict("records")]

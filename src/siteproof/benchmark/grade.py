@@ -1,0 +1,220 @@
+"""Grading: design-based metrics of every submission against the sealed key → a ranked :class:`Leaderboard`.
+
+The scores are design-based: with the known rate e_S and outcome models μ̂₀, μ̂₁ cross-fitted on the key side
+from X only, the oracle doubly robust arm scores (Robins, Rotnitzky & Zhao 1994)
+
+    Γ₁ = μ̂₁(X) + W (Y − μ̂₁(X)) / e_S,    Γ₀ = μ̂₀(X) + (1 − W)(Y − μ̂₀(X)) / (1 − e_S),    Γ = Γ₁ − Γ₀
+
+are unbiased for the unit's effect given (X, S) whatever μ̂ is, so every metric of a submission made from X
+alone is honest:
+
+* **AUTOC** and **Qini coefficient** of the τ̂ ranking scored with Γ (Yadlowsky, Fleming, Shah, Brunskill &
+  Wager, rank-weighted average treatment effects), half-sample bootstrap SE (``evaluation.rank_metric``);
+* **BLP β₂**: the heterogeneity loading of τ̂ in the weighted regression of Y on [1, μ̂₀, W − e_S,
+  (W − e_S)(τ̂ − τ̄)] with weights 1/(e_S(1 − e_S)), HC2 SE (Chernozhukov, Demirer, Duflo & Fernández-Val);
+* **rule gain** of the submitted ``treat`` over random allocation with the same treated share q̂,
+  mean[(π − q̂)(D − D̄)] with D = Γ₁ − Γ₀ − cost (Imai & Li 2023), SE from its influence function;
+* **ATE error**: submitted ATE − design-based pooled ATE Σ_s (n_s/n)·DiM_s, SE that of the design ATE (the
+  submission is one number, so there are no per-unit scores to pair with); and whether the submitted 95 % CI
+  covers the design ATE.
+
+The ranking and its ties are in :mod:`siteproof.benchmark.standings`. Nothing that names a site leaves the
+grader unless ``reveal=True``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+from ..blind.evaluation import blp, half_samples, rank_metric
+from ..blind.rules import rule_value
+from ..core.errors import SiteproofError
+from ..core.estimates import Estimate
+from ..core.scores import arm_scores
+from ..intake.sitetrials import design_ate, site_table
+from .key import BenchmarkKey, public_check, read_key
+from .standings import METRICS, GradedSubmission, Leaderboard, rank_entries
+from .submissions import Submission, read_submission, submission_files
+
+
+@dataclass(frozen=True, eq=False)
+class _Grader:
+    """Design-based ingredients shared by every submission: graded units, scores, half-samples, design ATE."""
+
+    graded: np.ndarray
+    y: np.ndarray
+    w: np.ndarray
+    e: np.ndarray
+    mu0: np.ndarray
+    gamma0: np.ndarray
+    gamma1: np.ndarray
+    cost: np.ndarray | None
+    site: np.ndarray
+    halves: np.ndarray
+    design: Estimate
+    design_replicates: np.ndarray
+    n_boot: int
+    seed: int
+
+    @classmethod
+    def from_key(cls, key: BenchmarkKey, n_boot: int, seed: int) -> "_Grader":
+        """Scores of the graded units; the design ATE and its half-sample replicates over all benchmark units."""
+        u, g = key.units, key.graded
+        y, w, e, mu0, mu1 = (u[c].to_numpy(dtype=float) for c in ("y", "w", "rate", "mu0", "mu1"))
+        gamma0, gamma1 = arm_scores(y, w, e, mu0, mu1)
+        site = u["site"].to_numpy(dtype=object)
+        design = design_ate(y, w, site, _stratum(u)).estimate
+        design_replicates = _half_means(_halves(y.size, n_boot, seed + 1), np.asarray(design.scores))
+        cost = u["cost"].to_numpy(dtype=float)[g] if u["cost"].notna().all() else None
+        return cls(graded=g, y=y[g], w=w[g], e=e[g], mu0=mu0[g], gamma0=gamma0[g], gamma1=gamma1[g], cost=cost,
+                   site=site[g], halves=_halves(int(g.sum()), n_boot, seed), design=design,
+                   design_replicates=design_replicates, n_boot=n_boot, seed=seed)
+
+    @property
+    def gamma(self) -> np.ndarray:
+        """Γ = Γ₁ − Γ₀ of the graded units."""
+        return self.gamma1 - self.gamma0
+
+
+def _stratum(units: pd.DataFrame) -> np.ndarray | None:
+    """The key's stratum column, or None when the benchmark has no strata."""
+    return units["stratum"].to_numpy(dtype=object) if units["stratum"].notna().any() else None
+
+
+def _halves(n: int, n_boot: int, seed: int) -> np.ndarray:
+    """(n_boot, n//2) unit indices of the half-samples: the draws of ``evaluation.half_samples``."""
+    return np.concatenate(list(half_samples(n, n_boot, seed)), axis=0)
+
+
+def _half_means(halves: np.ndarray, scores: np.ndarray) -> np.ndarray:
+    """Replicate of a mean of per-unit scores on each half-sample."""
+    return scores[halves].mean(axis=1)
+
+
+def grade_submissions(
+    key_dir: Path | str,
+    submissions: Sequence[Path | str],
+    *,
+    rank_by: str = "autoc",
+    reveal: bool = False,
+    n_boot: int = 200,
+    seed: int | None = None,
+    public_data: Path | str | None = None,
+) -> Leaderboard:
+    """Grade submission CSVs (files or folders) against a sealed key → :class:`Leaderboard` (rank order).
+
+    The public data file (``public_data``, default ``key/../public/data.csv``) is checked against the sealed
+    SHA-256 when present. ``seed`` (default: the key's) fixes the half-samples, so grading is reproducible and
+    every submission is scored on the same draws. ``reveal`` adds per-site details (site labels, design
+    estimates by site, mean τ̂ by site); without it no output names a site.
+    """
+    if rank_by not in METRICS:
+        raise SiteproofError(f"unknown ranking metric {rank_by!r}", f"use one of {', '.join(METRICS)}")
+    if int(n_boot) < 2:
+        raise SiteproofError(f"n_boot is {n_boot}", "use at least 2 half-samples (default 200)")
+    key = read_key(key_dir)
+    check = public_check(key, public_data)
+    seed = int(key.meta["seed"] if seed is None else seed)
+    files = submission_files(submissions)
+    subs = [read_submission(path, key) for path in files]
+    _check_unique_names(subs)
+    grader = _Grader.from_key(key, int(n_boot), seed)
+    graded = [_grade(sub, grader, reveal, rank_by) for sub in subs]
+    entries = rank_entries(graded, rank_by)
+    benchmark = {"name": key.meta["name"], "benchmark_id": key.benchmark_id, "n": key.meta["n"],
+                 "n_graded": int(key.graded.sum()), "holdout_share": key.meta["holdout_share"]}
+    sites = _site_details(key) if reveal else None
+    return Leaderboard(entries, rank_by, benchmark, grader.design, int(key.graded.sum()), int(n_boot), seed,
+                       check, reveal, sites)
+
+
+def _check_unique_names(subs: list[Submission]) -> None:
+    """Refuse two submissions with the same display name."""
+    seen: dict[str, Path] = {}
+    for sub in subs:
+        if sub.name in seen:
+            raise SiteproofError(f"two submissions are called {sub.name!r} ({seen[sub.name].name}, {sub.path.name})",
+                                 "give each a distinct file name or name = \"...\" in its TOML")
+        seen[sub.name] = sub.path
+
+
+def _grade(sub: Submission, grader: _Grader, reveal: bool, rank_by: str) -> GradedSubmission:
+    """Every metric the submission allows, with half-sample replicates for the tie comparisons."""
+    metrics: dict[str, Estimate] = {}
+    replicates: dict[str, np.ndarray] = {}
+    tau = None if sub.tau_hat is None else sub.tau_hat[grader.graded]
+    if tau is not None:
+        _tau_metrics(tau, grader, rank_by == "blp_beta2", metrics, replicates)
+    treated_share = None
+    if sub.treat is not None:
+        value = rule_value(sub.treat[grader.graded], grader.gamma0, grader.gamma1, grader.cost)
+        metrics["rule_gain"] = replace(value.gain, name="rule_gain")
+        replicates["rule_gain"] = _half_means(grader.halves, np.asarray(value.gain.scores))
+        treated_share = value.treated_share
+    covers = None
+    if sub.ate is not None:
+        d = grader.design
+        metrics["ate_error"] = Estimate.from_value("ate_error", sub.ate.estimate - d.estimate, d.se,
+                                                   estimand="submitted ATE − design ATE")
+        replicates["ate_error"] = sub.ate.estimate - grader.design_replicates
+        covers = bool(sub.ate.ci[0] <= d.estimate <= sub.ate.ci[1])
+    site_means = None
+    if reveal and tau is not None:
+        site_means = {str(k): float(v) for k, v in pd.Series(tau).groupby(grader.site).mean().items()}
+    return GradedSubmission(sub.name, sub.path.name, metrics, treated_share, sub.ate, covers,
+                            site_means=site_means, replicates=replicates)
+
+
+def _tau_metrics(
+    tau: np.ndarray, grader: _Grader, beta2_replicates: bool,
+    metrics: dict[str, Estimate], replicates: dict[str, np.ndarray],
+) -> None:
+    """AUTOC, Qini (replicates from ``rank_metric``) and BLP β₂ of τ̂ on the graded units, added in place.
+
+    BLP β₂ replicates need one regression per half-sample, so they are computed only when β₂ ranks.
+    """
+    for kind in ("autoc", "qini"):
+        result = rank_metric(tau, grader.gamma, kind=kind, n_boot=grader.n_boot, seed=grader.seed)
+        metrics[kind] = replace(result.estimate_of(0), name=kind)
+        replicates[kind] = result.boot[:, 0]
+    metrics["blp_beta2"], replicates["blp_beta2"] = _blp_beta2(tau, grader, beta2_replicates)
+
+
+def _blp_beta2(tau: np.ndarray, grader: _Grader, with_replicates: bool) -> tuple[Estimate, np.ndarray]:
+    """BLP β₂ with known rates and μ̂₀ as baseline; replicates on the shared half-samples.
+
+    β₂ is undefined (NaN) for a τ̂ without variation, and where the regression is singular.
+    """
+    full = _beta2(grader.y, grader.w, grader.e, tau, grader.mu0)
+    reps = np.full(grader.halves.shape[0], np.nan)
+    if with_replicates and np.isfinite(full.estimate):
+        for b, half in enumerate(grader.halves):
+            reps[b] = _beta2(grader.y[half], grader.w[half], grader.e[half], tau[half], grader.mu0[half]).estimate
+    return full, reps
+
+
+def _beta2(y: np.ndarray, w: np.ndarray, e: np.ndarray, tau: np.ndarray, baseline: np.ndarray) -> Estimate:
+    """β₂ of ``evaluation.blp`` renamed ``blp_beta2``; NaN for a constant τ̂ or a singular regression."""
+    undefined = Estimate.from_value("blp_beta2", math.nan, math.nan, estimand="BLP")
+    if np.ptp(tau) == 0:
+        return undefined
+    try:
+        return replace(blp(y, w, e, tau, baseline).beta2, name="blp_beta2")
+    except SiteproofError:
+        return undefined
+
+
+def _site_details(key: BenchmarkKey) -> pd.DataFrame:
+    """Per-site design table for ``reveal``: sizes, known rate, difference in means with Neyman SE."""
+    u = key.units
+    table = site_table(u["y"].to_numpy(dtype=float), u["w"].to_numpy(dtype=int), u["site"].to_numpy(dtype=object),
+                       known_rate=u["rate"].to_numpy(dtype=float), stratum=_stratum(u))
+    rate = u.groupby("site")["rate"].mean()
+    table["rate_known"] = table["site"].map(rate)
+    return table[["site", "n", "n_treated", "rate_known", "difference_in_means", "se"]]

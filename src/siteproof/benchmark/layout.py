@@ -1,0 +1,47 @@
+"""The file layout of a holdout benchmark: folder and file names, reserved columns, schemas, JSON records.
+
+``BENCH/public/`` holds the exam (data file, task sheet, submission templates), ``BENCH/key/`` the sealed key
+(key.json, units.csv, leak_audit.csv); grading writes the leaderboard files into a folder of its own.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+import pandas as pd
+
+from ..core.errors import SiteproofError
+
+KEY_SCHEMA = "siteproof/holdout-key"
+LEADERBOARD_SCHEMA = "siteproof/leaderboard"
+FORMAT_VERSION = 1
+TOKEN = "token"
+PART = "part"
+PUBLIC_DATA = "data.csv"
+TASK_SHEET = "task.md"
+TEMPLATE_CSV = "submission_template.csv"
+TEMPLATE_TOML = "submission_template.toml"
+KEY_FILE = "key.json"
+KEY_UNITS = "units.csv"
+KEY_AUDIT = "leak_audit.csv"
+LEADERBOARD_FILES = ("leaderboard.csv", "leaderboard.json", "leaderboard.html", "sites.csv")
+
+
+def refuse_earlier(out: Path, names: Sequence[str], holds: str, force: bool) -> None:
+    """Refuse a folder holding any of ``names`` (``holds`` says what, e.g. "a benchmark") unless ``force``."""
+    earlier = [name for name in names if (out / name).exists()]
+    if earlier and not force:
+        raise SiteproofError(f"output folder {out} already holds {holds} ({', '.join(earlier)})",
+                             "choose another --out folder or add --force to overwrite it")
+
+
+def json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
+    """Rows of ``frame`` as JSON-ready dicts: NumPy scalars as Python values, NaN and ±inf as None."""
+    out = []
+    for row in frame.to_dict("records"):
+        out.append({k: (None if isinstance(v, float) and not math.isfinite(v) else
+                        v.item() if isinstance(v, np.generic) else v) for k, v in row.items()})
+    return out

@@ -1,0 +1,219 @@
+"""Sealing a holdout benchmark: a multi-site trial becomes a public exam and a sealed key.
+
+The raw table is first put through the leak audit (:mod:`siteproof.benchmark.leakaudit`); a flagged column
+stops sealing unless it is kept (acknowledged) or dropped. The usable units of the cells that have a
+design-based truth (≥ 2 units in each arm) are shuffled and given random tokens. ``public/`` gets the data
+without site, stratum or id (outcome, treatment as 0/1, the covariates as they were, the cost), a task sheet
+and submission templates; ``key/`` gets token → site and known rate, the outcome models the grader needs, the
+design-based truths, the audit table, the SHA-256 of the public data file and the seed. With ``holdout_share``
+> 0 a random share of the units has its outcome and treatment left blank in the public file; only those units
+are graded, so no prediction can lean on the graded unit's own outcome.
+
+Nothing that names a site (site, stratum, id, known rate) goes into ``public/``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ..core.errors import SiteproofError, warn
+from ..core.estimates import Estimate
+from ..core.outputs import StagedOutput, atomic_write_bytes, atomic_write_text
+from ..intake.sitetrials import DesignATE, design_ate
+from ..intake.study import Study, StudySpec, load_study, read_table
+from .key import fit_key_units, key_metadata, write_key
+from .layout import PART, PUBLIC_DATA, TASK_SHEET, TEMPLATE_CSV, TEMPLATE_TOML, TOKEN, refuse_earlier
+from .leakaudit import LeakAudit, audit_columns, require_no_leaks
+from .tasksheet import task_sheet, template_csv, template_toml
+
+_TOKEN_ALPHABET = np.array(list("abcdefghjkmnpqrstuvwxyz23456789"))
+_TOKEN_FIRST = np.array(list("abcdfghjkmnpqrstuvwxyz"))  # a letter other than e: never read as a number
+_TOKEN_LENGTH = 10
+_MIN_GRADED = 20
+
+
+@dataclass(frozen=True)
+class SealResult:
+    """What :func:`seal_benchmark` wrote: paths, sizes, the audit and the design-based truth."""
+
+    out_dir: Path
+    public_sha256: str
+    n: int
+    n_graded: int
+    seed: int
+    holdout_share: float
+    audit: LeakAudit
+    design_ate: Estimate
+    published_columns: tuple[str, ...]
+    warnings: tuple[str, ...]
+
+    @property
+    def benchmark_id(self) -> str:
+        """The first 12 hex digits of the public file's SHA-256."""
+        return self.public_sha256[:12]
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready summary of the sealing."""
+        return {
+            "out_dir": str(self.out_dir), "benchmark_id": self.benchmark_id, "public_sha256": self.public_sha256,
+            "n": self.n, "n_graded": self.n_graded, "seed": self.seed, "holdout_share": self.holdout_share,
+            "published_columns": list(self.published_columns), "design_ate": self.design_ate.to_dict(),
+            "audit": self.audit.to_dict(), "warnings": list(self.warnings),
+        }
+
+
+def seal_benchmark(
+    spec: StudySpec,
+    out_dir: Path | str,
+    *,
+    holdout_share: float = 0.0,
+    folds: int = 5,
+    learners: Any = None,
+    force: bool = False,
+) -> SealResult:
+    """Audit, then write ``out_dir/public/`` (exam) and ``out_dir/key/`` (sealed key); see the module docstring.
+
+    ``spec.keep_columns`` acknowledges flagged columns, ``spec.drop_columns`` and ``spec.site_derived`` leave
+    columns out; ``spec.seed`` drives every random step (audit folds, shuffle, tokens, holdout split, outcome
+    models), so the same seed writes byte-identical files. ``learners`` is passed to
+    :func:`~siteproof.blind.nuisance.cross_fit_nuisances` for the key-side outcome models.
+    """
+    _check_holdout_share(holdout_share)
+    out = Path(out_dir)
+    _check_bench_dir(out, force)
+    frame = read_table(spec.data, spec.encoding)
+    audit = _audit(frame, spec)
+    require_no_leaks(audit)
+    study = load_study(spec, frame=frame)
+    units, design, notes = _benchmark_units(study)
+    rng = np.random.default_rng(spec.seed)
+    order = rng.permutation(units.size)
+    units = units[order]
+    tokens = _tokens(rng, units.size)
+    graded = _holdout_mask(rng, units.size, holdout_share)
+    public = _public_frame(study, units, tokens, graded, holdout_share > 0)
+    public_bytes = public.to_csv(index=False, lineterminator="\n").encode("utf-8")
+    sha = hashlib.sha256(public_bytes).hexdigest()
+    key_units, nuisance_summary = fit_key_units(study, units, tokens, graded, folds, learners)
+    meta = key_metadata(study, spec, audit, design, sha, key_units, public, holdout_share, nuisance_summary, notes)
+    with StagedOutput(out, force=True) as staged:
+        atomic_write_bytes(staged / "public" / PUBLIC_DATA, public_bytes)
+        atomic_write_text(staged / "public" / TASK_SHEET, task_sheet(meta))
+        atomic_write_text(staged / "public" / TEMPLATE_CSV, template_csv(tokens))
+        atomic_write_text(staged / "public" / TEMPLATE_TOML, template_toml(meta))
+        write_key(staged / "key", meta, key_units, audit)
+    return SealResult(
+        out_dir=out, public_sha256=sha, n=int(units.size), n_graded=int(graded.sum()), seed=int(spec.seed),
+        holdout_share=float(holdout_share), audit=audit, design_ate=design.estimate,
+        published_columns=tuple(public.columns), warnings=tuple(list(study.warnings) + notes),
+    )
+
+
+def _check_holdout_share(share: float) -> None:
+    """Refuse a holdout share outside [0, 1)."""
+    if not (isinstance(share, (int, float)) and 0.0 <= share < 1.0):
+        raise SiteproofError(f"the holdout share is {share!r}",
+                             "give a share in [0, 1), e.g. 0.3 (0 grades every unit)")
+
+
+def _check_bench_dir(out: Path, force: bool) -> None:
+    """Refuse an output path that is a file, or a folder holding an earlier benchmark (unless ``force``)."""
+    if out.exists() and not out.is_dir():
+        raise SiteproofError(f"output path {out} is a file, not a folder", "name a folder with --out")
+    refuse_earlier(out, ("public", "key"), "a benchmark", force)
+
+
+def _audit(frame: pd.DataFrame, spec: StudySpec) -> LeakAudit:
+    """Leak audit of every column the public file could hold: covariates (declared or all others) and cost."""
+    roles = {spec.outcome, spec.treatment, spec.site, spec.id, spec.stratum, spec.cost} - {None}
+    drop = list(spec.drop_columns) + list(spec.site_derived)
+    if spec.covariates is not None:
+        columns = list(dict.fromkeys(spec.covariates))
+    else:
+        columns = [c for c in frame.columns if c not in roles]
+    columns += [c for c in drop if c not in columns and c not in roles]
+    if spec.cost is not None:
+        columns.append(spec.cost)
+    missing = [c for c in columns if c not in frame.columns]
+    if missing:
+        raise SiteproofError(f"column {missing[0]!r} is not in the data", f"name one of: {', '.join(frame.columns)}")
+    return audit_columns(frame, spec.site, columns, keep=spec.keep_columns, drop=drop, seed=spec.seed)
+
+
+def _benchmark_units(study: Study) -> tuple[np.ndarray, DesignATE, list[str]]:
+    """Indices of the usable units in cells with a design-based truth, the design ATE, and a note if any left."""
+    design = design_ate(study.blind.y, study.blind.w, study.site, study.stratum)
+    units = np.flatnonzero(design.included)
+    notes = []
+    left = study.n - units.size
+    if left:
+        notes.append(f"{left} units of cells with fewer than 2 units in an arm have no design-based truth and are "
+                     "left out of the benchmark")
+        warn(notes[-1])
+    if units.size < _MIN_GRADED:
+        raise SiteproofError(f"only {units.size} units have a design-based truth",
+                             f"a benchmark needs at least {_MIN_GRADED}; check the site and treatment columns")
+    return units, design, notes
+
+
+def _tokens(rng: np.random.Generator, n: int) -> np.ndarray:
+    """n distinct random tokens of 10 characters: lower-case letters and digits without look-alikes (i, l, o,
+    0, 1), starting with a letter other than e so that no spreadsheet reads a token as a number."""
+    def draw(k: int) -> list[str]:
+        first = rng.choice(_TOKEN_FIRST, size=k)
+        rest = rng.choice(_TOKEN_ALPHABET, size=(k, _TOKEN_LENGTH - 1))
+        return [a + "".join(row) for a, row in zip(first, rest)]
+
+    tokens = np.array(draw(n), dtype=object)
+    while True:
+        dup = pd.Series(tokens).duplicated().to_numpy()
+        if not dup.any():
+            return tokens
+        tokens[dup] = draw(int(dup.sum()))
+
+
+def _holdout_mask(rng: np.random.Generator, n: int, share: float) -> np.ndarray:
+    """True for graded units: all units, or a random round(share·n) of them (outcome hidden in public)."""
+    if share == 0:
+        return np.ones(n, dtype=bool)
+    k = int(round(share * n))
+    if k < _MIN_GRADED:
+        raise SiteproofError(f"a holdout share of {share} grades only {k} units",
+                             f"raise the share so that at least {_MIN_GRADED} units are graded")
+    graded = np.zeros(n, dtype=bool)
+    graded[rng.choice(n, size=k, replace=False)] = True
+    return graded
+
+
+def _public_frame(
+    study: Study, units: np.ndarray, tokens: np.ndarray, graded: np.ndarray, holdout: bool,
+) -> pd.DataFrame:
+    """token, [part], outcome, treatment (0/1), covariates as in the data, cost — no site, stratum or id."""
+    blind = study.blind
+    names = [blind.outcome, blind.treatment, *blind.covariates] + ([study.spec.cost] if blind.cost is not None else [])
+    clash = [c for c in names if c in (TOKEN, PART)]
+    if clash:
+        raise SiteproofError(f"column {clash[0]!r} has a name the public file reserves",
+                             f"rename it in the data (the public file uses '{TOKEN}' and '{PART}')")
+    y = pd.Series(blind.y[units]).astype("Int64" if blind.binary_outcome else "Float64")
+    w = pd.Series(blind.w[units]).astype("Int64")
+    if holdout:
+        y[graded] = pd.NA
+        w[graded] = pd.NA
+    columns: dict[str, Any] = {TOKEN: tokens}
+    if holdout:
+        columns[PART] = np.where(graded, "test", "train")
+    columns[blind.outcome] = y.array  # nullable arrays: integers stay integers next to empty cells
+    columns[blind.treatment] = w.array
+    frame = pd.DataFrame(columns)
+    raw = blind.raw_covariates.iloc[units].reset_index(drop=True)
+    frame = pd.concat([frame, raw], axis=1)
+    if blind.cost is not None:
+        frame[study.spec.cost] = blind.cost[units]
+    return frame

@@ -1,0 +1,140 @@
+"""Covariate screens and encoding into the blind feature matrix.
+
+Numeric columns are kept with median imputation and a ``<col>:missing`` indicator; text, boolean and
+categorical columns are one-hot encoded against their most frequent level, with a ``<col>:missing``
+indicator; constant feature columns are dropped.  Screens drop covariates that copy the site (every value
+occurs in one site only) and refuse undeclared identifiers and numbers mixed with stray text.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .sitetrials import natural_key
+from .spec import StudySpec
+from .values import as_float, examples, is_numeric, parses_as_number, text_labels
+from ..core.errors import SiteproofError
+
+ID_UNIQUE_SHARE = 0.9
+ID_MIN_VALUES = 10
+
+
+def _values(series: pd.Series) -> tuple[np.ndarray, bool]:
+    """(values, numeric?) — float64 with NaN (±inf → NaN) or object labels with None."""
+    if is_numeric(series):
+        values = as_float(series)
+        values[~np.isfinite(values)] = np.nan
+        return values, True
+    return text_labels(series), False
+
+
+def _present(values: np.ndarray, numeric: bool) -> np.ndarray:
+    """Which values are present (not NaN / not None)."""
+    return ~np.isnan(values) if numeric else np.array([v is not None for v in values], dtype=bool)
+
+
+def _check_text_column(name: str, labels: np.ndarray) -> None:
+    """Refuse numbers with stray text and undeclared identifiers among text covariates."""
+    present = [v for v in labels if v is not None]
+    distinct = set(present)
+    numeric = {v for v in distinct if parses_as_number(v)}
+    text = distinct - numeric
+    if len(numeric) >= 10 and 0 < len(text) <= 3 and sum(v in numeric for v in present) >= 0.8 * len(present):
+        raise SiteproofError(
+            f"covariate '{name}' holds numbers but also text such as {examples(sorted(text))}",
+            "replace those entries with empty cells (they are then imputed), "
+            f"or leave it out with --drop-column {name}",
+        )
+    if len(present) >= ID_MIN_VALUES and len(distinct) >= ID_UNIQUE_SHARE * len(present):
+        raise SiteproofError(
+            f"text column '{name}' looks like an identifier ({len(distinct)} of {len(present)} values are different)",
+            f"declare it with --id {name}, or leave it out with --drop-column {name}",
+        )
+
+
+def _copies_site(values: np.ndarray, numeric: bool, site: np.ndarray) -> bool:
+    """True when every value of the column occurs in one site only and values repeat (a site code/attribute).
+
+    Requires ≥ 2 sites among the rows where the column is present and at most half as many distinct values
+    as present rows, so that a continuous covariate with all-different values is not flagged.
+    """
+    present = _present(values, numeric)
+    if present.sum() < 2:
+        return False
+    pairs = pd.DataFrame({"v": values[present], "s": site[present]})
+    if pairs["s"].nunique() < 2 or pairs["v"].nunique() > present.sum() / 2:
+        return False
+    return bool((pairs.groupby("v")["s"].nunique() == 1).all())
+
+
+def screen_covariates(
+    frame: pd.DataFrame, names: list[str], site: np.ndarray, spec: StudySpec
+) -> tuple[dict[str, tuple[np.ndarray, bool]], list[str]]:
+    """Values of the covariates that survive the site-copy screen, and the warnings raised on the way."""
+    kept: dict[str, tuple[np.ndarray, bool]] = {}
+    notes: list[str] = []
+    for name in names:
+        values, numeric = _values(frame[name])
+        if not numeric:
+            _check_text_column(name, values)
+        if numeric and np.isinf(as_float(frame[name])).any():
+            notes.append(f"covariate '{name}' has infinite values; they are treated as missing")
+        if _copies_site(values, numeric, site):
+            if name not in spec.keep_columns:
+                notes.append(
+                    f"covariate '{name}' copies the site column '{spec.site}' (each of its values occurs in one "
+                    f"site only), so the blind analysis would see the site; it was dropped — pass "
+                    f"--keep-column {name} to keep it"
+                )
+                continue
+            notes.append(f"covariate '{name}' copies the site column '{spec.site}' and was kept (--keep-column): "
+                         "the blind analysis can see the site through it")
+        if not _present(values, numeric).any():
+            notes.append(f"covariate '{name}' has no values in the usable units; it is ignored")
+        kept[name] = (values, numeric)
+    return kept, notes
+
+
+def _encode_numeric(name: str, values: np.ndarray) -> tuple[list[np.ndarray], list[str]]:
+    """The column with missing values set to the median, plus ``<name>:missing`` if any are missing."""
+    missing = np.isnan(values)
+    if missing.all():
+        return [], []
+    filled = np.where(missing, np.median(values[~missing]), values)
+    if not missing.any():
+        return [filled], [name]
+    return [filled, missing.astype(float)], [name, f"{name}:missing"]
+
+
+def _encode_categorical(name: str, labels: np.ndarray) -> tuple[list[np.ndarray], list[str]]:
+    """One indicator per level except the most frequent (ties: first in natural order); ``<name>:missing``."""
+    present = [v for v in labels if v is not None]
+    columns: list[np.ndarray] = []
+    names: list[str] = []
+    if present:
+        counts = pd.Series(present).value_counts()
+        levels = sorted(counts.index, key=lambda v: (-counts[v], natural_key(v)))
+        for level in sorted(levels[1:], key=natural_key):
+            columns.append((labels == level).astype(float))
+            names.append(f"{name}={level}")
+    if len(present) < labels.size:
+        columns.append(np.array([v is None for v in labels], dtype=float))
+        names.append(f"{name}:missing")
+    return columns, names
+
+
+def encode_covariates(covariates: dict[str, tuple[np.ndarray, bool]], n: int) -> tuple[np.ndarray, list[str], list[str]]:
+    """Feature matrix (constant columns dropped), feature names, and the covariates that contribute."""
+    columns: list[np.ndarray] = []
+    names: list[str] = []
+    used: list[str] = []
+    for name, (values, numeric) in covariates.items():
+        block, block_names = (_encode_numeric if numeric else _encode_categorical)(name, values)
+        varying = [(c, nm) for c, nm in zip(block, block_names) if np.ptp(c) > 0]
+        if varying:
+            used.append(name)
+            columns.extend(c for c, _ in varying)
+            names.extend(nm for _, nm in varying)
+    X = np.column_stack(columns) if columns else np.empty((n, 0))
+    return np.ascontiguousarray(X, dtype=np.float64), names, used
