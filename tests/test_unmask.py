@@ -266,7 +266,7 @@ def test_summary_has_one_line_per_claim_and_explains_its_numbers(reference):
 # 4 independent seeds, P(at least 3 of 4 not different) = 0.95⁴ + 4·0.95³·0.05 = 0.986, whereas requiring 4
 # of 4 would fail 18.5 % of the time for a correct method — hence "≥ 3 of 4".  With the hidden shift of 3 SD
 # units the bias is ≈ 9 SEs of D (power ≈ 1), so ≥ 3 of 4 `different` fails with probability < 10⁻³.  The
-# 20-seed versions (slow) check the issue's ≥ 90 %.
+# 20-seed versions (slow) check the ≥ 90 % target.
 def _aipw_verdicts(seeds, hidden: float, config: BlindConfig) -> list[str]:
     out = []
     for seed in seeds:

@@ -3,7 +3,7 @@
 Usage:  python tests/perf/bench_scaling.py [--sizes 10000,100000,1000000] [--p 20]
                                            [--study-n 1000] [--study-replicates 6] [--skip-scaling] [--skip-dask]
 
-1. **Scaling** (issue 7 item 5): for each n, the blind run of ``bench_blind.py`` (intake + ``run_blind`` with
+1. **Scaling** : for each n, the blind run of ``bench_blind.py`` (intake + ``run_blind`` with
    default settings on its synthetic 20-covariate trial) in its own subprocess, so that its peak RSS is its own:
    wall time, time inside scikit-learn fit/predict calls (model time), the share outside them, peak RSS.  The
    instrumentation, the data and the subprocess runner are imported from ``bench_blind`` (not copied).
@@ -11,7 +11,7 @@ Usage:  python tests/perf/bench_scaling.py [--sizes 10000,100000,1000000] [--p 2
    LocalCluster with 1 and then 2 single-threaded workers, each cluster warmed up (siteproof imported in every
    worker) before the clock starts; replicates per minute = R / wall minutes.
 
-Targets of the issue (on a 2-core machine): outside-fitting share ≤ 10 %, wall(1M)/wall(100k) ≤ 12, peak RSS at
+Targets (on a 2-core machine): outside-fitting share ≤ 10 %, wall(1M)/wall(100k) ≤ 12, peak RSS at
 1M ≤ 4 GB, 2 workers ≥ 1.7 × one.  The machine's load average is printed beside the figures: on a shared
 machine the Dask ratio measures the cores that were free, not the code.
 """

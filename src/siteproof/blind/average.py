@@ -2,7 +2,7 @@
 
 Every estimator returns :class:`siteproof.core.estimates.Estimate` with ``scores`` ψ_i whose mean is the estimate
 (influence-function form), so that unmasking can compare it with a design-based estimate on the same units
-through mean(ψ_blind − ψ_design) (design.md point 4).  Standard errors:
+through mean(ψ_blind − ψ_design) (paired: the two estimates share their units, so their errors are correlated).  Standard errors:
 
 * ``naive``       — Neyman (1923): √(s₁²/n₁ + s₀²/n₀);
 * ``regression``  — HC2 sandwich of the Lin (2013) regression (Imbens & Kolesár 2016);

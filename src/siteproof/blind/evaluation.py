@@ -2,13 +2,13 @@
 
 Every function here is pure: arrays in, a result dataclass (with ``to_dict()``) out.  None of them fits a
 model or computes a score from a model: the per-unit scores Γ (AIPW with the learned ê in the blind
-analysis; design-based or oracle AIPW with the known site rates after unmasking, design.md point 3) and the
-propensity e are arguments.  The same call therefore gives the blind claim with (ê, blind Γ) and the design
+analysis; design-based or oracle AIPW with the known site rates after unmasking, unbiased for τ(X, s) with
+the known rates — docs/methods-unmask.md) and the propensity e are arguments.  The same call therefore gives the blind claim with (ê, blind Γ) and the design
 value with (e_S, design Γ).  Every figure comes with a standard error and a 95% Wald interval.
 
 The group, rank and cost statistics are linear in Γ for a fixed τ̂, so a paired blind − design difference
-(design.md point 4) is obtained by passing Γ_blind − Γ_design; :func:`rank_metric` also accepts a 2-D Γ and
-keeps its bootstrap replicates, drawn once for all columns.
+(docs/methods-sites-and-verdicts.md) is obtained by passing Γ_blind − Γ_design; :func:`rank_metric` also
+accepts a 2-D Γ and keeps its bootstrap replicates, drawn once for all columns.
 
 Formulas and references: docs/methods-heterogeneity.md.
 """

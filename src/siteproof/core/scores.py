@@ -9,7 +9,7 @@ and outcome regressions μ̂₀, μ̂₁ (cross-fitted, functions of x only):
       Γ₀_i = μ̂₀(x_i) + (1 − W_i)(Y_i − μ̂₀(x_i)) / (1 − e_i)
 * AIPW score: Γ_i = Γ₁_i − Γ₀_i.
 
-With the known rate, E[Γ*_i | X, S] = E[Γ_i | X, S] = τ(X, S) whatever μ̂ is (design.md point 3), which is why
+With the known rate, E[Γ*_i | X, S] = E[Γ_i | X, S] = τ(X, S) whatever μ̂ is (docs/methods-unmask.md), which is why
 any blind object that is a function of x alone can be scored with them.
 """
 

@@ -9,7 +9,7 @@ For each site s with ≥ 50 units and ≥ 2 units in each arm:
 3. score them on site s with its known rate: oracle AIPW scores
        Γ_i = μ̂₁(x_i) − μ̂₀(x_i) + W_i(Y_i − μ̂₁(x_i))/e_s − (1 − W_i)(Y_i − μ̂₀(x_i))/(1 − e_s),
    where μ̂₀, μ̂₁ are the full blind run's cross-fitted outcome models (out-of-fold for the unit, so with the
-   known e_s the score is unbiased for τ(X, s) — design.md point 3).  AUTOC (Yadlowsky et al.) of the
+   known e_s the score is unbiased for τ(X, s); docs/methods-unmask.md).  AUTOC (Yadlowsky et al.) of the
    transported ranking with half-sample bootstrap SE, and each rule's gain over random allocation with the
    same treated share (Imai & Li 2023; ``rules.rule_value``).
 
