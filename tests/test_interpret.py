@@ -8,6 +8,7 @@ from types import SimpleNamespace
 import pytest
 from rich.console import Console
 
+from siteproof.blind.claims import Claims
 from siteproof.core import interpret
 from siteproof.core.interpret import (
     DIFFERENT,
@@ -73,7 +74,7 @@ def test_screen_and_report_show_the_same_average_effect_verdicts_and_labels():
     report_verdicts = [line.rstrip(" |").rsplit("| ", 1)[1] for line in rows]
     assert screen_verdicts == report_verdicts
     # the claims screen and the report name each estimator with the same label
-    labels = _cells(claims_renderables(run.claims)[1], 0)
+    labels = _cells(claims_renderables(Claims.from_dict(run.claims, run.units))[1], 0)
     assert labels == [estimator_label(r["estimator"]) for r in run.claims["ate"]]
     for label in labels:
         assert f"\n| {label} | " in md

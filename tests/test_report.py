@@ -22,6 +22,7 @@ from siteproof.reporting.context import RunView
 from siteproof.blind.claims import Claims, write_claims
 from siteproof.core.errors import SiteproofError
 from siteproof.core.outputs import atomic_write_json, to_json_text
+from siteproof.unmask.scorecard import Scorecard
 
 SECTION_IDS = ["study", "overlap", "average-effect", "sites", "heterogeneity", "rules", "transport", "methods"]
 MAX_BYTES = 3 * 1024 * 1024  # the demo's report stays under 3 MB (docs/report.md)
@@ -51,7 +52,7 @@ def small_run() -> SmallRun:
         warnings.simplefilter("ignore")
         study = load_study(spec, frame=small_trial(n=1500))
         claims = run_blind(study.blind, fast_config(models=("constant", "t", "r", "dr")))
-        scorecard = run_unmask(study, claims.record, claims.units, seed=3)
+        scorecard = run_unmask(study, claims, seed=3)
     card = scorecard.to_dict()
     return SmallRun(json.loads(to_json_text(claims.record)), json.loads(to_json_text(card)), claims.record, card,
                     claims.units, study.blind.w.astype(int), scorecard)
@@ -66,7 +67,7 @@ def run_copy() -> tuple[dict, dict]:
 def written(tmp_path_factory):
     claims, card = run_copy()
     out = tmp_path_factory.mktemp("report")
-    paths = report.write_report(out, claims, card)
+    paths = report.write_report(out, Claims.from_dict(claims, small_run().units), Scorecard.from_dict(card))
     return out, paths, claims, card
 
 

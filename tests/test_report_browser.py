@@ -17,8 +17,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from siteproof.blind.claims import Claims
 from siteproof.reporting import report
-from test_report import SECTION_IDS, run_copy
+from siteproof.unmask.scorecard import Scorecard
+from test_report import SECTION_IDS, run_copy, small_run
 
 pytestmark = pytest.mark.browser
 
@@ -80,7 +82,7 @@ def _run_chromium(profile: Path, *args: str) -> subprocess.CompletedProcess:
 def page(tmp_path_factory):
     claims, card = run_copy()
     out = tmp_path_factory.mktemp("browser")
-    report.write_report(out, claims, card)
+    report.write_report(out, Claims.from_dict(claims, small_run().units), Scorecard.from_dict(card))
     return out
 
 

@@ -220,7 +220,7 @@ def blind(
     config = _blind_config(spec.seed, folds, models)
     with _fit_progress(config) as tick:
         _, claims = blind_stage(spec, out, config, force=force, progress=tick)
-    for item in claims_renderables(claims.to_dict()):
+    for item in claims_renderables(claims):
         console.print(item)
     console.print(f"\nclaims: {out / 'claims.json'}")
 

@@ -104,7 +104,7 @@ def _write_scorecard(folder: Path, claims: Claims, scorecard: Scorecard, report:
     """``scorecard.json`` and (when asked) the report, into ``folder``; files take the dict forms."""
     atomic_write_json(folder / "scorecard.json", scorecard.to_dict())
     if report:
-        write_report(folder, claims.to_dict(), scorecard.to_dict())
+        write_report(folder, claims, scorecard)
 
 
 def write_demo_data(design: str, folder: Path) -> StudySpec:

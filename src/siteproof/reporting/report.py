@@ -19,10 +19,11 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from ..blind.claims import read_claims
+from ..blind.claims import Claims, read_claims
 from ..core.errors import SiteproofError
 from ..core.interpret import count_words, headline_ate_verdict, verdict_note
 from ..core.outputs import atomic_write_bytes, atomic_write_text
+from ..unmask.scorecard import Scorecard, ScorecardRecord
 from .context import RunView, margin_note
 from .document import FIGURE_DIR, Document, Table
 from .sections_design import overlap_section, study_section
@@ -49,13 +50,16 @@ BUILDERS = (study_section, overlap_section, average_section, sites_section, hete
             rules_section, transport_section, methods_section)
 
 
-def write_report(out_dir: Path, claims: dict, scorecard: dict) -> dict[str, Path]:
+def write_report(out_dir: Path | str, claims: Claims, scorecard: Scorecard | ScorecardRecord) -> dict[str, Path]:
     """Write ``report.html``, ``report.md`` and ``figures/<name>.svg|.png`` into ``out_dir`` (atomic writes).
+
+    The report is built from the two results objects' file records (the same content as claims.json and
+    scorecard.json), so a report rewritten from a run folder is the report of the run.
 
     Returns the written paths: keys ``html``, ``markdown`` and ``figure:<name>.svg`` / ``figure:<name>.png``.
     """
     out = Path(out_dir)
-    doc = build_document(claims, scorecard)
+    doc = build_document(claims.to_dict(), scorecard.to_dict())
     paths: dict[str, Path] = {}
     for rendered in doc.figures:
         for suffix, data in (("svg", rendered.svg.encode("utf-8")), ("png", rendered.png)):
@@ -72,7 +76,7 @@ def report_from_folder(run_dir: Path) -> dict[str, Path]:
     folder = Path(run_dir)
     if not folder.is_dir():
         raise SiteproofError(f"{folder} is not a folder", "point `siteproof report` at a folder written by `siteproof run`")
-    claims = read_claims(folder).to_dict()
+    claims = read_claims(folder)
     card_path = folder / SCORECARD_FILE
     if not card_path.exists():
         raise SiteproofError(
@@ -83,18 +87,19 @@ def report_from_folder(run_dir: Path) -> dict[str, Path]:
         scorecard = json.loads(card_path.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
         raise SiteproofError(f"cannot read {card_path}: {exc}", "rerun `siteproof unmask` to rewrite it") from exc
-    if scorecard.get("schema") != "siteproof/scorecard":
+    if not isinstance(scorecard, dict) or scorecard.get("schema") != "siteproof/scorecard":
         raise SiteproofError(f"{card_path} is not a siteproof scorecard", "rerun `siteproof unmask` to rewrite it")
-    if scorecard.get("study", {}).get("fingerprint") not in (None, claims.get("fingerprint")):
+    if (scorecard.get("study") or {}).get("fingerprint") not in (None, claims.to_dict().get("fingerprint")):
         raise SiteproofError(
             f"{SCORECARD_FILE} and claims.json in {folder} describe different data (fingerprints differ)",
             "rerun `siteproof unmask` with these claims so that both files come from the same data",
         )
-    return write_report(folder, claims, scorecard)
+    return write_report(folder, claims, Scorecard.from_dict(scorecard))
 
 
 def build_document(claims: dict, scorecard: dict) -> Document:
-    """The whole report as a :class:`Document` (figures rendered, nothing written)."""
+    """The whole report as a :class:`Document` from the claims.json and scorecard.json records (figures
+    rendered, nothing written)."""
     run = RunView(claims, scorecard)
     name = run.study.get("name")
     title = f"siteproof report — {name}" if name else f"siteproof report — {run.outcome}"

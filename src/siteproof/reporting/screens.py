@@ -11,6 +11,7 @@ from rich import box
 from rich.table import Table
 from rich.text import Text
 
+from ..blind.claims import Claims
 from ..core.interpret import (
     DIFFERENT,
     EQUIVALENT,
@@ -24,7 +25,7 @@ from ..core.interpret import (
     verdict_note,
 )
 from ..unmask.correspondence import Comparison
-from ..unmask.scoring import Scorecard
+from ..unmask.scorecard import Scorecard
 from .formatting import fmt, fmt_ci, fmt_pct, fmt_pm, fmt_sig
 
 SCREEN_RULES = (".threshold", ".top20", "tree")
@@ -104,8 +105,9 @@ def rules_table(record: dict[str, Any]) -> Table:
     return table
 
 
-def claims_renderables(record: dict[str, Any]) -> list[Any]:
+def claims_renderables(claims: Claims) -> list[Any]:
     """Everything the ``blind`` verb prints, top to bottom."""
+    record = claims.to_dict()
     items: list[Any] = [_header(record), ate_table(record), cate_table(record), rules_table(record)]
     tree = next((r for r in record["rules"] if r["kind"] == "tree"), None)
     if tree is not None:
