@@ -55,7 +55,7 @@ class StudySpec:
         """Refuse a ``data`` that is neither a file path nor a pandas DataFrame."""
         if not isinstance(self.data, (str, os.PathLike, pd.DataFrame)):
             raise SiteproofError(
-                f"the study data is a {type(self.data).__name__}, not a file path or a pandas DataFrame",
+                f"the study data is of type {type(self.data).__name__}, not a file path or a pandas DataFrame",
                 "give data as the path of the table or as a pandas DataFrame",
             )
 
