@@ -44,13 +44,16 @@ from ..intake.sitetrials import DesignATE, design_ate, naive_ate, site_table
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 from ..core.interpret import (
+    ALPHA,
     DIFFERENT,
+    HETEROGENEITY_ALPHA,
     NOT_RECOVERED,
     RECOVERED,
     RECOVERY_CLASSES,
     claim_recovery,
     estimator_label,
     headline_ate_verdict,
+    heterogeneity_status,
     propensity_recovered,
 )
 from ..blind.evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
@@ -62,7 +65,6 @@ from ..intake.study import Study
 from .scorecard import AteComparison, CateComparison, RuleComparison, Scorecard
 from .transport import leave_one_site_out
 
-ALPHA = 0.05
 PRIMARY_ESTIMATOR = "aipw"
 CROSS_ESTIMAND = "overlap"
 Tick = Callable[[str], None]
@@ -287,8 +289,8 @@ def _rank_comparison(tau: np.ndarray, blind: np.ndarray, design: np.ndarray, kin
 
 
 def _one_sided_significant(estimate: float, se: float) -> bool:
-    """estimate/se > z_{1−α} (one-sided test of 'greater than 0')."""
-    return bool(se > 0 and np.isfinite(estimate) and estimate / se > stats.norm.ppf(1 - ALPHA))
+    """estimate/se > z_{1−α} (one-sided test of 'greater than 0', α = interpret.HETEROGENEITY_ALPHA)."""
+    return bool(se > 0 and np.isfinite(estimate) and estimate / se > stats.norm.ppf(1 - HETEROGENEITY_ALPHA))
 
 
 def _heterogeneity_status(
@@ -300,14 +302,8 @@ def _heterogeneity_status(
     claimed = _one_sided_significant(blp_claim.get("estimate", np.nan), blp_claim.get("se", np.nan)) or \
         _one_sided_significant(autoc_claim.get("estimate", np.nan), autoc_claim.get("se", np.nan))
     found = _one_sided_significant(*beta2) or _one_sided_significant(*autoc)
-    status = {
-        (True, True): "confirmed",
-        (True, False): "not confirmed",
-        (False, True): "missed",
-        (False, False): "none claimed, none found",
-    }[(claimed, found)]
-    return {"claimed": claimed, "design_finds": found, "status": status,
-            "rule": "β₂ > 0 or AUTOC > 0, one-sided test at 5 %"}
+    return {"claimed": claimed, "design_finds": found, "status": heterogeneity_status(claimed, found),
+            "rule": f"β₂ > 0 or AUTOC > 0, one-sided test at {100 * HETEROGENEITY_ALPHA:g} %"}
 
 
 def _cate_comparison(
