@@ -84,17 +84,15 @@ def report_from_folder(run_dir: Path) -> dict[str, Path]:
             "run `siteproof unmask` (or `siteproof run`) into this folder first",
         )
     try:
-        scorecard = json.loads(card_path.read_text(encoding="utf-8"))
+        scorecard = Scorecard.from_dict(json.loads(card_path.read_text(encoding="utf-8")), where=str(card_path))
     except (OSError, ValueError) as exc:
         raise SiteproofError(f"cannot read {card_path}: {exc}", "rerun `siteproof unmask` to rewrite it") from exc
-    if not isinstance(scorecard, dict) or scorecard.get("schema") != "siteproof/scorecard":
-        raise SiteproofError(f"{card_path} is not a siteproof scorecard", "rerun `siteproof unmask` to rewrite it")
-    if (scorecard.get("study") or {}).get("fingerprint") not in (None, claims.to_dict().get("fingerprint")):
+    if (scorecard.to_dict().get("study") or {}).get("fingerprint") not in (None, claims.to_dict().get("fingerprint")):
         raise SiteproofError(
             f"{SCORECARD_FILE} and claims.json in {folder} describe different data (fingerprints differ)",
             "rerun `siteproof unmask` with these claims so that both files come from the same data",
         )
-    return write_report(folder, claims, Scorecard.from_dict(scorecard))
+    return write_report(folder, claims, scorecard)
 
 
 def build_document(claims: dict, scorecard: dict) -> Document:

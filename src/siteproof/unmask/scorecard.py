@@ -312,18 +312,18 @@ class Scorecard(_ScorecardView):
         }
 
     @staticmethod
-    def from_dict(record: dict[str, Any]) -> ScorecardRecord:
-        """A scorecard from its ``scorecard.json`` record; refuses another schema or version."""
+    def from_dict(record: dict[str, Any], where: str = "this record") -> ScorecardRecord:
+        """A scorecard from its ``scorecard.json`` record; refuses another schema or version (``where`` names
+        the record in messages, e.g. the file it was read from)."""
         if not isinstance(record, dict) or record.get("schema") != SCHEMA:
-            raise SiteproofError("this is not a siteproof scorecard", "point at the scorecard.json `siteproof unmask` wrote")
+            raise SiteproofError(f"{where} is not a siteproof scorecard",
+                                 "point at the scorecard.json `siteproof unmask` wrote")
         if record.get("version") != VERSION:
             raise SiteproofError(
-                f"scorecard format version {record.get('version')!r}; this siteproof reads version {VERSION}",
+                f"{where} has scorecard format version {record.get('version')!r}; this siteproof reads version {VERSION}",
                 "rerun `siteproof unmask` with this version of siteproof",
             )
         return ScorecardRecord(record)
-
-
 
 
 # --------------------------------------------------------------------------------------------------------
