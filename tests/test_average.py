@@ -161,11 +161,13 @@ def test_ipw_hajek_toy_by_hand():
 def test_invalid_inputs_are_user_errors():
     _, y, w = _trial(n=50, seed=8)
     with pytest.raises(SiteproofError):
-        ipw_hajek(y, w, np.where(w == 1, 1.0, 0.5))
-    with pytest.raises(SiteproofError):
         naive(y, np.r_[1, np.zeros(y.size - 1)])
     with pytest.raises(SiteproofError):
         aipw(y, w, np.full(y.size, 0.5), np.zeros(3), np.zeros(y.size))
+    with pytest.raises(SiteproofError, match=r"propensity must lie strictly inside \(0, 1\)"):
+        ipw_hajek(y, w, np.where(w == 1, 1.0, 0.5))
+    with pytest.raises(SiteproofError, match=rf"covariates has shape \({y.size},\)"):
+        regression_adjusted(np.zeros(y.size), y, w)
 
 
 def _aipw_draw(n: int, seed: int) -> tuple[float, float, float]:

@@ -8,11 +8,14 @@ import pytest
 from siteproof.core.checks import (
     alpha_level,
     at_least,
+    finite_matrix,
     finite_vector,
     in_unit_interval,
     one_dimensional,
     same_length,
     standard_error,
+    unit_vector,
+    unit_vector_or_scalar,
 )
 from siteproof.core.errors import SiteproofError
 
@@ -29,6 +32,36 @@ def test_one_dimensional_keeps_shape_and_rejects_matrices():
     assert one_dimensional("tau", [1, 2, 3]).shape == (3,)
     with pytest.raises(SiteproofError, match=r"tau must be one-dimensional, got shape \(2, 2\)"):
         one_dimensional("tau", np.zeros((2, 2)))
+
+
+def test_unit_vector_checks_shape_length_and_finiteness():
+    np.testing.assert_array_equal(unit_vector("y", [1, 2, 3], 3), [1.0, 2.0, 3.0])
+    with pytest.raises(SiteproofError, match="y must be one-dimensional"):
+        unit_vector("y", np.zeros((3, 1)), 3)
+    with pytest.raises(SiteproofError, match="y has 2 entries but 3 were expected"):
+        unit_vector("y", [1.0, 2.0], 3)
+    with pytest.raises(SiteproofError, match="y: NaN or infinite") as info:
+        unit_vector("y", [1.0, np.nan], fix="drop those units")
+    assert info.value.fix == "drop those units"
+
+
+def test_unit_vector_or_scalar_repeats_a_scalar():
+    np.testing.assert_array_equal(unit_vector_or_scalar("e", 0.25, 3), [0.25, 0.25, 0.25])
+    np.testing.assert_array_equal(unit_vector_or_scalar("e", [0.1, 0.2], 2), [0.1, 0.2])
+    with pytest.raises(SiteproofError, match="e has 2 entries but 3"):
+        unit_vector_or_scalar("e", [0.1, 0.2], 3)
+    with pytest.raises(SiteproofError, match="e: NaN or infinite"):
+        unit_vector_or_scalar("e", np.inf, 3)
+
+
+def test_finite_matrix_keeps_the_shape_and_names_the_input():
+    assert finite_matrix("X", np.zeros((4, 2)), 4).shape == (4, 2)
+    with pytest.raises(SiteproofError, match=r"X has shape \(4,\), expected \(4, p\)"):
+        finite_matrix("X", np.zeros(4), 4)
+    with pytest.raises(SiteproofError, match=r"expected \(3, p\)"):
+        finite_matrix("X", np.zeros((4, 2)), 3)
+    with pytest.raises(SiteproofError, match="X: NaN or infinite"):
+        finite_matrix("X", [[0.0, np.nan]])
 
 
 def test_same_length_and_at_least_report_the_counts():

@@ -212,7 +212,8 @@ def test_training_folds_with_one_arm_are_refused():
         (dict(e_hat=np.ones(40)), "strictly inside"),
         (dict(w=np.full(40, 2.0)), "0/1"),
         (dict(folds=np.zeros(40, dtype=int)), "at least 2 folds"),
-        (dict(mu0=np.zeros(39)), "shape"),
+        (dict(mu0=np.zeros(39)), "mu0 has 39 entries but 40"),
+        (dict(m_hat=np.full(40, np.nan)), "m_hat: NaN or infinite"),
         (dict(X=np.zeros(40)), "2-D"),
     ],
 )

@@ -50,6 +50,18 @@ def test_r_loss_units_by_hand():
     np.testing.assert_allclose(r_loss_units([1, 2], [1, 0], 0.5, [0.5, 1], [2, 1]), [0.25, 2.25])
 
 
+def test_r_loss_inputs_broadcast_scalars_and_name_the_bad_argument():
+    y, w = np.array([1.0, 0.0, 2.0]), np.array([1.0, 0.0, 1.0])
+    # ℓ_i = [(Y_i − m) − (W_i − e)·τ]² with e = 0.5, m = 1, τ = 2 (Nie & Wager 2021): 1, 0, 0
+    np.testing.assert_allclose(r_loss_units(y, w, 0.5, 1.0, 2.0), [1.0, 0.0, 0.0], atol=1e-12)
+    with pytest.raises(SiteproofError, match=r"the propensity e must lie strictly inside \(0, 1\)"):
+        r_loss_units(y, w, [0.5, 1.0, 0.5], 0.0, 0.0)
+    with pytest.raises(SiteproofError, match="w has 2 entries but 3"):
+        r_loss_units(y, w[:2], 0.5, 0.0, 0.0)
+    with pytest.raises(SiteproofError, match="m: NaN or infinite"):
+        r_loss_units(y, w, 0.5, [0.0, np.nan, 0.0], 0.0)
+
+
 def test_r_loss_comparison_is_a_paired_mean_of_unit_differences():
     d = _dgp(500, seed=1)
     res = r_loss_comparison(d["y"], d["w"], d["e"], d["m"], d["tau"], 1.0)

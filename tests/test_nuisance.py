@@ -147,6 +147,10 @@ def test_clipping_and_count():
     assert np.array_equal(nu.e_hat, np.clip(nu.e_raw, 0.05, 0.95))
     with pytest.raises(SiteproofError):
         cross_fit_nuisances(X, y, w, folds, clip=(0.0, 1.0))
+    bad = X.copy()
+    bad[0, 0] = np.nan
+    with pytest.raises(SiteproofError, match="X: NaN or infinite"):
+        cross_fit_nuisances(bad, y, w, folds)
 
 
 # ------------------------------------------------------------------------------------------ learner kinds

@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 from scipy.linalg import cho_solve, solve_triangular
 
+from ..core.checks import finite_matrix, in_unit_interval, unit_vector
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 from ..core.scores import aipw_scores
@@ -65,7 +66,7 @@ def regression_adjusted(X: np.ndarray, y: np.ndarray, w: np.ndarray) -> Estimate
     residual; the normal equations make mean(ψ) = τ̂ exactly.
     """
     y, w = _check_yw(y, w)
-    X = _check_X(X, y.size)
+    X = finite_matrix("covariates", X, y.size)
     Xs, n_constant = _standardized_covariates(X)
     p = Xs.shape[1]
     gram, zy = _lin_gram(Xs, y, w)
@@ -104,8 +105,8 @@ def aipw(y: np.ndarray, w: np.ndarray, e: np.ndarray, mu0: np.ndarray, mu1: np.n
     """
     y, w = _check_yw(y, w)
     e = _check_e(e, y.size)
-    mu0 = _check_vector(mu0, y.size, "mu0")
-    mu1 = _check_vector(mu1, y.size, "mu1")
+    mu0 = unit_vector("mu0", mu0, y.size)
+    mu1 = unit_vector("mu1", mu1, y.size)
     return Estimate.from_scores("aipw", aipw_scores(y, w, e, mu0, mu1))
 
 
@@ -240,7 +241,7 @@ def overlap_summary(e_raw: np.ndarray, w: np.ndarray, clip: tuple[float, float])
       weights a_i = 1/ê_i (treated) or 1/(1 − ê_i) (control), ê clipped, with its share of the arm size;
     * counts of ê by arm on 40 equal-width bins of [0, 1] (the overlap histogram).
     """
-    e_raw = _check_vector(e_raw, np.asarray(w).size, "e_raw")
+    e_raw = unit_vector("e_raw", e_raw, np.asarray(w).size)
     w = _as_binary(w)
     lo, hi = float(clip[0]), float(clip[1])
     e = np.clip(e_raw, lo, hi)
@@ -303,7 +304,7 @@ def balance_table(X: np.ndarray, w: np.ndarray, e: np.ndarray, feature_names: Se
     balanced when |SMD| < 0.1.  A zero denominator gives SMD 0 (equal means) or ±inf.
     """
     w = _as_binary(w)
-    X = _check_X(X, w.size)
+    X = finite_matrix("covariates", X, w.size)
     e = _check_e(e, w.size)
     if len(feature_names) != X.shape[1]:
         raise SiteproofError(
@@ -341,7 +342,7 @@ def covariate_aucs(X: np.ndarray, w: np.ndarray, folds: np.ndarray, n_bins: int 
     dependence is detected.
     """
     w = _as_binary(w)
-    X = _check_X(X, w.size)
+    X = finite_matrix("covariates", X, w.size)
     fold_ids = np.unique(np.asarray(folds), return_inverse=True)[1].reshape(-1)
     if fold_ids.size != w.size:
         raise SiteproofError("folds and treatment have different lengths", "build folds with make_folds(w)")
@@ -399,7 +400,7 @@ def _as_binary(w: np.ndarray) -> np.ndarray:
 
 def _check_yw(y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     w = _as_binary(w)
-    y = _check_vector(y, w.size, "outcome")
+    y = unit_vector("outcome", y, w.size)
     n1 = int(w.sum())
     if min(n1, w.size - n1) < 2:
         raise SiteproofError(
@@ -408,26 +409,7 @@ def _check_yw(y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return y, w
 
 
-def _check_vector(values: np.ndarray, n: int, what: str) -> np.ndarray:
-    values = np.asarray(values, dtype=float)
-    if values.shape != (n,):
-        raise SiteproofError(f"{what} has shape {values.shape}, expected ({n},)", "pass one value per unit")
-    if not np.all(np.isfinite(values)):
-        raise SiteproofError(f"{what} holds missing or infinite values", "remove or impute them")
-    return values
-
-
 def _check_e(e: np.ndarray, n: int) -> np.ndarray:
-    e = _check_vector(e, n, "propensity")
-    if np.any((e <= 0) | (e >= 1)):
-        raise SiteproofError("propensity values must lie strictly inside (0, 1)", "clip them, e.g. to [0.01, 0.99]")
+    e = unit_vector("propensity", e, n)
+    in_unit_interval("propensity", e, "clip them, e.g. to [0.01, 0.99]", strict=True)
     return e
-
-
-def _check_X(X: np.ndarray, n: int) -> np.ndarray:
-    X = np.asarray(X, dtype=float)
-    if X.ndim != 2 or X.shape[0] != n:
-        raise SiteproofError(f"covariates have shape {X.shape}, expected ({n}, p)", "pass X as an (n, p) array")
-    if not np.all(np.isfinite(X)):
-        raise SiteproofError("covariates hold missing or infinite values", "impute them first")
-    return X

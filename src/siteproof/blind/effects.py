@@ -26,6 +26,7 @@ from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostin
 from sklearn.pipeline import Pipeline
 from sklearn.utils.validation import has_fit_parameter
 
+from ..core.checks import in_unit_interval, unit_vector
 from ..core.errors import SiteproofError
 from ..core.learners import ConstantModel, fit_model, predict_model
 from ..core.scores import aipw_scores
@@ -150,15 +151,6 @@ class _Inputs:
     nuisance_models: Mapping[str, Sequence[Any]]
 
 
-def _as_vector(name: str, value: Any, n: int) -> np.ndarray:
-    arr = np.asarray(value, dtype=float)
-    if arr.shape != (n,):
-        raise SiteproofError(f"{name} has shape {arr.shape}, expected ({n},)", f"pass one value of {name} per unit")
-    if not np.all(np.isfinite(arr)):
-        raise SiteproofError(f"{name} contains missing or infinite values", "impute or drop those units before fitting")
-    return arr
-
-
 def _validate(
     key: str, X: Any, y: Any, w: Any, e_hat: Any, mu0: Any, mu1: Any, m_hat: Any, folds: Any,
     binary_outcome: bool,
@@ -170,13 +162,12 @@ def _validate(
         raise SiteproofError(f"X must be 2-D (units × covariates), got {X.ndim}-D", "pass X with shape (n, p)")
     n = X.shape[0]
     y, w, e_hat, mu0, mu1, m_hat = (
-        _as_vector(name, v, n)
+        unit_vector(name, v, n, "impute or drop those units before fitting")
         for name, v in (("y", y), ("w", w), ("e_hat", e_hat), ("mu0", mu0), ("mu1", mu1), ("m_hat", m_hat))
     )
     if not np.all((w == 0) | (w == 1)):
         raise SiteproofError("the treatment w must be coded 0/1", "recode the treatment column to 0 and 1")
-    if np.any((e_hat <= 0) | (e_hat >= 1)):
-        raise SiteproofError("e_hat must lie strictly inside (0, 1)", "clip the cross-fitted propensity away from 0 and 1")
+    in_unit_interval("e_hat", e_hat, "clip the cross-fitted propensity away from 0 and 1", strict=True)
     if binary_outcome and not np.all((y == 0) | (y == 1)):
         raise SiteproofError("binary_outcome=True but y is not coded 0/1", "recode the outcome or set binary_outcome=False")
     folds = np.asarray(folds)

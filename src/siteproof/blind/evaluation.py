@@ -21,6 +21,7 @@ from typing import Any, Iterator
 import numpy as np
 from scipy import stats
 
+from ..core.checks import finite_vector, in_unit_interval, unit_vector, unit_vector_or_scalar
 from ..core.errors import SiteproofError
 from ..core.estimates import Z95, Estimate
 
@@ -31,26 +32,14 @@ _CHUNK_ELEMENTS = 1 << 22  # units × draws held in memory at once by the half-s
 # --------------------------------------------------------------------------------------------------------
 # input checks
 # --------------------------------------------------------------------------------------------------------
-def _vector(name: str, value: Any, n: int | None = None) -> np.ndarray:
-    arr = np.asarray(value, dtype=float)
-    if arr.ndim != 1 or (n is not None and arr.shape[0] != n):
-        want = f"({n},)" if n is not None else "(n,)"
-        raise SiteproofError(f"{name} has shape {arr.shape}, expected {want}", f"pass one value of {name} per unit")
-    if not np.all(np.isfinite(arr)):
-        raise SiteproofError(f"{name} contains missing or infinite values", f"drop those units or fix {name}")
-    return arr
-
-
-def _vector_or_scalar(name: str, value: Any, n: int) -> np.ndarray:
-    arr = np.asarray(value, dtype=float)
-    return _vector(name, np.full(n, float(arr)) if arr.ndim == 0 else arr, n)
-
-
-def _propensity(e: Any, n: int) -> np.ndarray:
-    e = _vector_or_scalar("e", e, n)
-    if np.any((e <= 0) | (e >= 1)):
-        raise SiteproofError("the propensity e must lie strictly inside (0, 1)", "clip e away from 0 and 1")
-    return e
+def _trial_arrays(y: Any, w: Any, e: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Outcome y and treatment w as per-unit vectors of one length, and the propensity e (a scalar is
+    broadcast) strictly inside (0, 1)."""
+    y = unit_vector("y", y)
+    w = unit_vector("w", w, y.size)
+    e = unit_vector_or_scalar("e", e, y.size)
+    in_unit_interval("the propensity e", e, "clip e away from 0 and 1", strict=True)
+    return y, w, e
 
 
 def _score_matrix(gamma: Any, n: int) -> tuple[np.ndarray, bool]:
@@ -58,8 +47,7 @@ def _score_matrix(gamma: Any, n: int) -> tuple[np.ndarray, bool]:
     arr = np.asarray(gamma, dtype=float)
     if arr.ndim not in (1, 2) or arr.shape[0] != n:
         raise SiteproofError(f"gamma has shape {arr.shape}, expected ({n},) or ({n}, c)", "pass one score row per unit")
-    if not np.all(np.isfinite(arr)):
-        raise SiteproofError("gamma contains missing or infinite values", "drop those units or fix the scores")
+    finite_vector("gamma", arr, "drop those units or fix the scores")
     return (arr[:, None], True) if arr.ndim == 1 else (arr, False)
 
 
@@ -71,12 +59,10 @@ def r_loss_units(y: Any, w: Any, e: Any, m: Any, tau: Any) -> np.ndarray:
 
     ``e``, ``m`` and ``tau`` may be scalars (broadcast to every unit).
     """
-    y = _vector("y", y)
+    y, w, e = _trial_arrays(y, w, e)
     n = y.size
-    w = _vector("w", w, n)
-    e = _propensity(e, n)
-    m = _vector_or_scalar("m", m, n)
-    tau = _vector_or_scalar("tau", tau, n)
+    m = unit_vector_or_scalar("m", m, n)
+    tau = unit_vector_or_scalar("tau", tau, n)
     return ((y - m) - (w - e) * tau) ** 2
 
 
@@ -136,7 +122,7 @@ def quantile_groups(tau: Any, k: int = 5) -> np.ndarray:
     the groups have sizes ⌊n/k⌋ or ⌈n/k⌉; tied units always share a group (so heavy ties can leave some
     groups empty).  The result does not depend on the order of the units.  k = 2 is the median split.
     """
-    tau = _vector("tau", tau)
+    tau = unit_vector("tau", tau)
     n = tau.size
     if not (isinstance(k, (int, np.integer)) and 2 <= k <= n):
         raise SiteproofError(f"k = {k} quantile groups is not possible with {n} units", "use 2 ≤ k ≤ number of units")
@@ -212,8 +198,8 @@ def gates(tau: Any, gamma: Any, k: int = 5) -> GatesResult:
     is out-of-fold and Γ is built from nuisances not fit on the unit, Γ̄_g is unbiased for the group's
     average effect given the groups.  Pass Γ_a − Γ_b to get paired differences of two scorings.
     """
-    tau = _vector("tau", tau)
-    gamma = _vector("gamma", gamma, tau.size)
+    tau = unit_vector("tau", tau)
+    gamma = unit_vector("gamma", gamma, tau.size)
     groups = _group_estimates(tau, gamma, k)
     halves = _group_estimates(tau, gamma, 2)
     return GatesResult(
@@ -280,12 +266,10 @@ def blp(y: Any, w: Any, e: Any, tau: Any, baseline: Any) -> BlpResult:
     probability, β₁ and β₂ are identified whatever B is (W − e is v-orthogonal to any function of x).
     SEs: HC2.  A constant τ̂ (or B) is collinear with the intercept; its column is dropped and β₂ is NaN.
     """
-    y = _vector("y", y)
+    y, w, e = _trial_arrays(y, w, e)
     n = y.size
-    w = _vector("w", w, n)
-    e = _propensity(e, n)
-    tau = _vector("tau", tau, n)
-    baseline = _vector_or_scalar("baseline", baseline, n)
+    tau = unit_vector("tau", tau, n)
+    baseline = unit_vector_or_scalar("baseline", baseline, n)
     resid_w = w - e
     columns = {"intercept": np.ones(n), "baseline": baseline, "beta1": resid_w, "beta2": resid_w * (tau - tau.mean())}
     keep = [name for name, col in columns.items() if name in ("intercept", "beta1") or np.ptp(col) > 0]
@@ -449,7 +433,7 @@ def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200,
     """
     if kind not in RANK_KINDS:
         raise SiteproofError(f"unknown rank metric kind {kind!r}", f"use one of {', '.join(RANK_KINDS)}")
-    tau = _vector("tau", tau)
+    tau = unit_vector("tau", tau)
     n = tau.size
     if n < 4:
         raise SiteproofError(f"rank metrics need at least 4 units, got {n}", "evaluate on more units")
@@ -525,10 +509,10 @@ def cost_curve(tau: Any, gamma: Any, cost: Any, grid: int = 100) -> CostCurveRes
     part).  Ties in τ̂/c are handled like :func:`rank_metric`: Γ, Γ² and c are averaged within tied blocks.
     Costs must be positive.  The curve is linear in Γ, so Γ_a − Γ_b gives paired differences.
     """
-    tau = _vector("tau", tau)
+    tau = unit_vector("tau", tau)
     n = tau.size
-    gamma = _vector("gamma", gamma, n)
-    cost = _vector("cost", cost, n)
+    gamma = unit_vector("gamma", gamma, n)
+    cost = unit_vector("cost", cost, n)
     if np.any(cost <= 0):
         raise SiteproofError("the cost column has zero or negative values", "give every unit a positive cost")
     if n < 2 or grid < 1:

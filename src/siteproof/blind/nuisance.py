@@ -28,6 +28,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
+from ..core.checks import finite_matrix, finite_vector
 from ..core.errors import SiteproofError
 from ..core.learners import fit_model, predict_model
 
@@ -344,8 +345,8 @@ def _check_inputs(
             f"shapes disagree: X {X.shape}, y {y.shape}, w {w.shape}, folds {folds.shape}",
             "pass X as (n, p) and y, w, folds as length-n arrays",
         )
-    if not (np.all(np.isfinite(X)) and np.all(np.isfinite(y))):
-        raise SiteproofError("X or y holds missing or infinite values", "impute them before cross-fitting")
+    finite_matrix("X", X, fix="impute them before cross-fitting")
+    finite_vector("y", y, "impute them before cross-fitting")
     if binary_outcome and not np.all((y == 0) | (y == 1)):
         raise SiteproofError(
             "binary_outcome is set but the outcome is not 0/1", "recode it as 0/1 or unset binary_outcome"

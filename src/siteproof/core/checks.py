@@ -30,6 +30,30 @@ def one_dimensional(name: str, values: Any) -> np.ndarray:
     return arr
 
 
+def unit_vector(name: str, values: Any, n: int | None = None, fix: str | None = None) -> np.ndarray:
+    """One finite float64 value per unit: 1-D, of length ``n`` when given, no NaN or ±inf; else SiteproofError."""
+    arr = one_dimensional(name, values)
+    if n is not None and arr.size != n:
+        raise SiteproofError(f"{name} has {arr.size} entries but {n} were expected", f"pass one value of {name} per unit")
+    return finite_vector(name, arr, fix)
+
+
+def unit_vector_or_scalar(name: str, values: Any, n: int, fix: str | None = None) -> np.ndarray:
+    """A scalar repeated for all ``n`` units, or else :func:`unit_vector` of ``values`` with length ``n``."""
+    arr = np.asarray(values, dtype=float)
+    return unit_vector(name, np.full(n, float(arr)) if arr.ndim == 0 else arr, n, fix)
+
+
+def finite_matrix(name: str, values: Any, n_rows: int | None = None, fix: str | None = None) -> np.ndarray:
+    """A 2-D float64 array (``n_rows`` rows when given) with no NaN or ±inf, else SiteproofError."""
+    arr = np.asarray(values, dtype=float)
+    if arr.ndim != 2 or (n_rows is not None and arr.shape[0] != n_rows):
+        want = f"({n_rows}, p)" if n_rows is not None else "(n, p)"
+        raise SiteproofError(f"{name} has shape {arr.shape}, expected {want}", f"pass {name} as an {want} array")
+    finite_vector(name, arr, fix)
+    return arr
+
+
 def same_length(name_a: str, a: np.ndarray, name_b: str, b: np.ndarray, fix: str) -> None:
     """Raise SiteproofError unless ``a`` and ``b`` have the same number of entries."""
     if np.size(a) != np.size(b):
