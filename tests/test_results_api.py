@@ -165,6 +165,8 @@ def test_a_dataframe_goes_straight_in(trial, notebook):
 
 def test_study_pipeline_and_meta_analysis_have_the_same_face(trial, notebook):
     study, _, _ = notebook
+    spec_text = repr(spec_for(trial, trial.data))
+    assert spec_text.startswith(f"StudySpec(data=<DataFrame {len(trial.data)}×") and len(spec_text) < REPR_LIMIT
     cells = _check_face(study, {"site", "n", "n_treated", "rate_declared", "rate_realized"})
     assert cells["n"].sum() == study.n
     features = _check_face(study.blind, {"feature", "mean_treated", "mean_control", "smd"})

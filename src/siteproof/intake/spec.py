@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 import os
 import sys
-from dataclasses import asdict, dataclass, field, fields, replace
+from dataclasses import MISSING, Field, asdict, dataclass, field, fields, replace
 from fractions import Fraction
 from pathlib import Path
 from typing import Any, Mapping
@@ -29,7 +29,12 @@ else:  # pragma: no cover - Python 3.10
 DATAFRAME_SOURCE = "<DataFrame>"
 
 
-@dataclass
+def _default(f: Field) -> Any:
+    """A dataclass field's default value (calling its factory where it has one)."""
+    return f.default_factory() if f.default_factory is not MISSING else f.default
+
+
+@dataclass(repr=False)
 class StudySpec:
     """Where the data are and what each column means (the TOML study file or the CLI data flags)."""
 
@@ -58,6 +63,14 @@ class StudySpec:
                 f"the study data is of type {type(self.data).__name__}, not a file path or a pandas DataFrame",
                 "give data as the path of the table or as a pandas DataFrame",
             )
+
+    def __repr__(self) -> str:
+        """The fields that are set, the data named by :attr:`source` (a DataFrame by its shape, never its rows)."""
+        data = (f"<DataFrame {self.data.shape[0]}×{self.data.shape[1]}>" if isinstance(self.data, pd.DataFrame)
+                else repr(str(self.data)))
+        rest = ", ".join(f"{f.name}={getattr(self, f.name)!r}" for f in fields(self)[1:]
+                         if getattr(self, f.name) != _default(f))
+        return f"StudySpec(data={data}" + (f", {rest})" if rest else ")")
 
     @property
     def source(self) -> str:
