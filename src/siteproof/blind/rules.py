@@ -36,7 +36,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..core.checks import finite_vector, in_unit_interval, one_dimensional
+from ..core.checks import in_unit_interval, unit_vector, unit_vector_or_scalar
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 
@@ -48,21 +48,15 @@ _TREAT, _NO_TREAT = "treat", "do not treat"
 
 
 def _vector(name: str, values: Any, n: int | None = None) -> np.ndarray:
-    """A finite float64 vector (of length n if given), else SiteproofError."""
-    arr = one_dimensional(name, values)
-    if n is not None and arr.size != n:
-        raise SiteproofError(f"{name} has {arr.size} entries but {n} were expected",
-                             "pass arrays of the same length, one entry per unit")
-    return finite_vector(name, arr, f"impute or drop them before computing {name}")
+    """A finite float64 vector (of length n if given), else SiteproofError (:func:`~siteproof.core.checks.unit_vector`)."""
+    return unit_vector(name, values, n, f"impute or drop them before computing {name}")
 
 
 def _cost_vector(cost: Any, n: int) -> np.ndarray:
     """Per-unit cost as a length-n vector: 0 if None, a scalar broadcast, or the array itself."""
     if cost is None:
         return np.zeros(n)
-    if np.ndim(cost) == 0:
-        return np.full(n, _vector("cost", [cost])[0])
-    return _vector("cost", cost, n)
+    return unit_vector_or_scalar("cost", cost, n, "impute or drop them before computing cost")
 
 
 def _assignment(pi: Any, n: int | None = None) -> np.ndarray:
