@@ -20,11 +20,10 @@ from sklearn.dummy import DummyClassifier, DummyRegressor
 from .. import __version__
 from ..blind.nuisance import cross_fit_nuisances, make_folds
 from ..core.errors import SiteproofError
-from ..core.outputs import atomic_write_json, atomic_write_text
+from ..core.outputs import atomic_write_json, atomic_write_text, json_records
 from ..intake.sitetrials import DesignATE
 from ..intake.study import Study, StudySpec
-from .layout import (FORMAT_VERSION, KEY_AUDIT, KEY_FILE, KEY_SCHEMA, KEY_UNITS, PART, PUBLIC_DATA, TOKEN,
-                     json_records)
+from .layout import FORMAT_VERSION, KEY_AUDIT, KEY_FILE, KEY_SCHEMA, KEY_UNITS, PART, PUBLIC_DATA, TOKEN
 from .leakaudit import LeakAudit
 
 

@@ -1,4 +1,4 @@
-"""The file layout of a holdout benchmark: folder and file names, reserved columns, schemas, JSON records.
+"""The file layout of a holdout benchmark: folder and file names, reserved columns, schemas.
 
 ``BENCH/public/`` holds the exam (data file, task sheet, submission templates), ``BENCH/key/`` the sealed key
 (key.json, units.csv, leak_audit.csv); grading writes the leaderboard files into a folder of its own.
@@ -6,12 +6,8 @@
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
-from typing import Any, Sequence
-
-import numpy as np
-import pandas as pd
+from typing import Sequence
 
 from ..core.errors import SiteproofError
 
@@ -36,12 +32,3 @@ def refuse_earlier(out: Path, names: Sequence[str], holds: str, force: bool) -> 
     if earlier and not force:
         raise SiteproofError(f"output folder {out} already holds {holds} ({', '.join(earlier)})",
                              "choose another --out folder or add --force to overwrite it")
-
-
-def json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    """Rows of ``frame`` as JSON-ready dicts: NumPy scalars as Python values, NaN and ±inf as None."""
-    out = []
-    for row in frame.to_dict("records"):
-        out.append({k: (None if isinstance(v, float) and not math.isfinite(v) else
-                        v.item() if isinstance(v, np.generic) else v) for k, v in row.items()})
-    return out

@@ -18,7 +18,8 @@ import pandas as pd
 
 from .. import __version__
 from ..core.estimates import Z95, Estimate
-from .layout import FORMAT_VERSION, LEADERBOARD_SCHEMA, json_records
+from ..core.outputs import json_records
+from .layout import FORMAT_VERSION, LEADERBOARD_SCHEMA
 from .submissions import SubmittedATE
 
 

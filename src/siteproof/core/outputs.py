@@ -9,6 +9,7 @@ results unless ``force`` is set.
 from __future__ import annotations
 
 import json
+import math
 import os
 import tempfile
 from pathlib import Path
@@ -64,6 +65,15 @@ def _finite(obj: Any) -> Any:
     if isinstance(obj, (list, tuple)):
         return [_finite(v) for v in obj]
     return obj
+
+
+def json_records(frame: Any) -> list[dict[str, Any]]:
+    """Rows of a pandas DataFrame as JSON-ready dicts: NumPy scalars as Python values, NaN and ±inf as None."""
+    def plain(v: Any) -> Any:
+        v = v.item() if isinstance(v, np.generic) else v
+        return None if isinstance(v, float) and not math.isfinite(v) else v
+
+    return [{k: plain(v) for k, v in row.items()} for row in frame.to_dict("records")]
 
 
 def to_json_text(obj: Any) -> str:

@@ -38,6 +38,7 @@ from ..core.checks import at_least, in_unit_interval, same_length
 from ..core.errors import SiteproofError
 from ..blind.average import kish_ess
 from ..core.estimates import Estimate, normal_ci
+from ..core.outputs import json_records
 
 RMSE_CAVEAT = (
     "ê targets the mixture e(x) = E[e_S | X = x], not the site rate e_S: even a perfect ê keeps an RMSE of "
@@ -108,8 +109,8 @@ class PropensityRecovery:
             "rates_source": self.rates_source,
             "calibration_slope": self.calibration_slope.to_dict(),
             "calibration_intercept": self.calibration_intercept.to_dict(),
-            "calibration_bins": _records(self.bins),
-            "by_site": _records(self.by_site),
+            "calibration_bins": json_records(self.bins),
+            "by_site": json_records(self.by_site),
             "rmse": self.rmse,
             "rmse_floor": self.rmse_floor,
             "rmse_caveat": RMSE_CAVEAT,
@@ -353,8 +354,3 @@ def _pair(e_hat: np.ndarray, known_rate: np.ndarray) -> tuple[np.ndarray, np.nda
     in_unit_interval("learned propensities", e_hat, fix, strict=True)
     in_unit_interval("known rates", known_rate, fix, strict=True)
     return e_hat, known_rate
-
-
-def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    rows = frame.to_dict("records")
-    return [{k: (v.item() if isinstance(v, np.generic) else v) for k, v in row.items()} for row in rows]

@@ -12,7 +12,6 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
 import pandas as pd
 
 from .. import __version__
@@ -20,6 +19,7 @@ from ..blind.evaluation import BlpResult
 from ..blind.rules import RuleValue
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
+from ..core.outputs import json_records
 from ..core.results import ResultsMixin
 from ..intake.sitetrials import DesignATE
 from .correspondence import Comparison
@@ -216,7 +216,7 @@ class RuleComparison(ResultsMixin):
             "design_ipw_known_rate": self.ipw.to_dict(),
             "sites_agreeing": agree,
             "sites_with_contrast": total,
-            "by_site": _records(self.by_site),
+            "by_site": json_records(self.by_site),
         }
 
 
@@ -295,7 +295,7 @@ class Scorecard(_ScorecardView):
             "headline": self.headline,
             "rates_source": self.rates_source,
             "study": self.study,
-            "sites": _records(self.sites),
+            "sites": json_records(self.sites),
             "design_ate": {**self.design.to_dict(), "estimator": "pooled difference in means by site"},
             "design_oracle_aipw": {
                 **self.oracle.to_dict(),
@@ -402,14 +402,3 @@ def _meta_dict(dl: RandomEffectsResult | None, reml: RandomEffectsResult | None)
 
 def _estimate_dict(est: Estimate) -> dict[str, Any]:
     return {"estimate": est.estimate, "se": est.se, "ci": [est.ci[0], est.ci[1]]}
-
-
-def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    def plain(v: Any) -> Any:
-        if isinstance(v, np.generic):
-            v = v.item()
-        if isinstance(v, float) and not np.isfinite(v):
-            return None
-        return v
-
-    return [{k: plain(v) for k, v in row.items()} for row in frame.to_dict("records")]
