@@ -118,22 +118,19 @@ def test_data_of_another_type_is_refused(data):
     assert info.value.fix
 
 
-def test_labelled_stata_column_comes_back_as_categories(star, folder):
-    path = folder / "labelled.dta"
-    _write_stata(star, path)
+@pytest.mark.parametrize("name, write", [
+    ("labelled.dta", _write_stata),
+    pytest.param("labelled.sav", _write_sav,
+                 marks=pytest.mark.skipif(not HAS_PYREADSTAT, reason="pyreadstat is needed to write SPSS files")),
+])
+def test_labelled_column_comes_back_as_categories(star, folder, name, write):
+    """Stata and SPSS value labels come back as the categories of the column, row by row."""
+    path = folder / name
+    write(star, path)
     column = read_table(path)["classk"]
     assert isinstance(column.dtype, pd.CategoricalDtype)
     assert set(column.cat.categories) == set(ARM_CODES)
     assert (column.astype(str).to_numpy() == star["classk"].to_numpy()).all()
-
-
-@pytest.mark.skipif(not HAS_PYREADSTAT, reason="pyreadstat is needed to write SPSS files")
-def test_labelled_spss_column_comes_back_as_categories(star, folder):
-    path = folder / "labelled.sav"
-    _write_sav(star, path)
-    column = read_table(path)["classk"]
-    assert isinstance(column.dtype, pd.CategoricalDtype)
-    assert set(column.cat.categories) == set(ARM_CODES)
 
 
 def test_spss_without_pyreadstat_is_one_error_naming_the_extra(star, folder, monkeypatch):
