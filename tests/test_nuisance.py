@@ -62,6 +62,74 @@ def test_folds_reject_too_few_units_or_folds():
         make_folds(np.array([0, 1, 2, 1, 0]), k=2)
 
 
+def test_folds_without_groups_are_the_same_as_before_groups_existed():
+    # copy of make_folds' output on these inputs before the `groups` argument was added
+    w = np.array([1, 0, 0, 1, 1, 0, 1, 0, 0, 0, 1, 1, 0, 0, 1, 0, 1, 0, 0, 1, 0, 1, 0])
+    assert make_folds(w, 3, 5).tolist() == [2, 0, 1, 1, 1, 2, 1, 2, 1, 2, 1, 0, 2, 1, 2, 0, 2, 0, 0, 0, 1, 0, 0]
+    assert make_folds(w, 4, 0).tolist() == [2, 2, 0, 2, 0, 1, 3, 3, 3, 0, 1, 1, 0, 2, 3, 3, 2, 1, 0, 1, 2, 0, 1]
+    assert np.array_equal(make_folds(w, 4, 0, groups=None), make_folds(w, 4, 0))
+
+
+def _cluster_randomized(n_clusters: int = 60, seed: int = 0):
+    """Clusters of 1–30 units, each wholly treated (share 0.4) or control, in shuffled row order."""
+    rng = np.random.default_rng(seed)
+    sizes = rng.integers(1, 31, size=n_clusters)
+    groups = np.repeat(np.arange(n_clusters), sizes)
+    arm = (rng.random(n_clusters) < 0.4).astype(np.int8)
+    order = rng.permutation(groups.size)
+    return arm[groups][order], groups[order].astype(str), sizes, arm
+
+
+def test_group_folds_keep_clusters_whole_and_balance_each_arm():
+    w, groups, sizes, arm = _cluster_randomized()
+    folds = make_folds(w, k=5, seed=2, groups=groups)
+    assert all(np.unique(folds[groups == g]).size == 1 for g in np.unique(groups))  # no cluster split
+    for a in (0, 1):
+        counts = np.bincount(folds[w == a], minlength=5)
+        # list-scheduling bound (Graham 1969): spread ≤ the largest cluster of that arm
+        assert counts.max() - counts.min() <= sizes[arm == a].max()
+    assert np.array_equal(folds, make_folds(w, k=5, seed=2, groups=groups))
+    assert not np.array_equal(folds, make_folds(w, k=5, seed=3, groups=groups))
+
+
+def test_group_folds_with_clusters_of_one_treated_share_balance_the_sizes():
+    # every cluster half treated: the greedy deal is list scheduling on sizes, spread ≤ largest cluster
+    rng = np.random.default_rng(4)
+    sizes = 2 * rng.integers(1, 11, size=40)
+    groups = np.repeat(np.arange(40), sizes)
+    w = np.concatenate([np.r_[np.ones(s // 2), np.zeros(s // 2)] for s in sizes]).astype(np.int8)
+    folds = make_folds(w, k=4, seed=0, groups=groups)
+    assert all(np.unique(folds[groups == g]).size == 1 for g in range(40))
+    for values in (np.bincount(folds, minlength=4), np.bincount(folds[w == 1], minlength=4)):
+        assert values.max() - values.min() <= sizes.max()
+
+
+def test_group_folds_need_enough_groups():
+    w = np.array([0, 1, 0, 1, 0, 1, 0, 1], dtype=np.int8)
+    with pytest.raises(SiteproofError, match="groups cannot fill"):
+        make_folds(w, k=5, groups=[1, 1, 2, 2, 3, 3, 4, 4])
+    with pytest.raises(SiteproofError, match="no unit of one arm"):
+        make_folds(np.r_[np.zeros(6), np.ones(2)], k=3, groups=[1, 1, 2, 2, 3, 3, 4, 4])
+
+
+def test_group_folds_stop_cluster_mates_from_revealing_the_arm():
+    """Cluster-level covariate, whole clusters assigned: a 1-NN propensity trained on the other folds
+    finds a cluster-mate (same X, same W) under unit folds, so ê = W exactly; with group folds every
+    training neighbour lies in another cluster."""
+    rng = np.random.default_rng(5)
+    groups = np.repeat(np.arange(40), 10)
+    arm = rng.permutation(np.r_[np.ones(20), np.zeros(20)]).astype(np.int8)
+    w, x = arm[groups], rng.normal(size=40)[groups]
+    for by_group, expect_exact in ((None, True), (groups, False)):
+        folds = make_folds(w, k=5, seed=0, groups=by_group)
+        e_hat = np.empty(w.size)
+        for f in range(5):
+            train, test = folds != f, folds == f
+            nearest = np.abs(x[test][:, None] - x[train][None, :]).argmin(axis=1)
+            e_hat[test] = w[train][nearest]
+        assert np.array_equal(e_hat, w) is expect_exact
+
+
 # ------------------------------------------------------------------------------------- out-of-fold property
 
 

@@ -19,11 +19,14 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from siteproof.core.clusters import cluster_design, cluster_level_columns
 from siteproof.core.errors import SiteproofError
+from siteproof.simulation.montecarlo import design_fingerprint
 from siteproof.simulation.scenario import Scenario
 from siteproof.simulation.simulate import list_designs, load_design, population_ate, simulate, write_simulation
 
-SHIPPED = {"demo", "hidden_branch", "null", "covariate_allocation", "extreme_rates", "many_small"}
+UNCLUSTERED = {"demo", "hidden_branch", "null", "covariate_allocation", "extreme_rates", "many_small"}
+SHIPPED = UNCLUSTERED | {"clustered"}
 BIG = 20_000
 
 
@@ -57,7 +60,7 @@ def test_all_shipped_designs_are_package_resources_and_simulate():
         assert set(roles.covariates) <= set(trial.data.columns)
         assert list(trial.truth["id"]) == list(trial.data[roles.id])
         assert trial.rates == design.rates
-        assert 15 <= len(roles.covariates) <= 25
+        assert 15 <= len(roles.covariates) <= 25 or name == "clustered"
 
 
 def test_default_sizes_and_declared_features_of_the_shipped_designs():
@@ -160,7 +163,7 @@ def test_site_shares_match_declared_size_shares(demo_big):
         assert abs(realized[site.name] - site.share) <= _binomial_tol(site.share, BIG)
 
 
-@pytest.mark.parametrize("name", sorted(SHIPPED))
+@pytest.mark.parametrize("name", sorted(UNCLUSTERED))
 def test_realized_rate_is_the_rounded_declared_rate(name):
     trial = simulate(name, n=3000, seed=8)
     data, roles = trial.data, trial.design.roles
@@ -444,3 +447,151 @@ def test_hidden_branch_biases_covariate_adjusted_aipw():
     bias_plain = _cross_fitted_aipw(plain) - plain.true_ate
     assert bias_hidden - bias_plain >= 0.3 * sd_y
     assert abs(bias_plain) <= 0.15 * plain.data["fluency_gain"].std()
+
+
+# ── clusters ────────────────────────────────────────────────────────────────────────────────────────────
+
+
+def test_designs_without_clusters_keep_their_fingerprints():
+    # sha256 of each design's repr, recorded before clusters existed: study folders keep resuming
+    recorded = {
+        "covariate_allocation": "0fa937f8c44bf81c7aaf1b60f62dd1a6e6d6b59efa268ba26309bdfe1da24b14",
+        "demo": "a586fcf60500af7df5dc90b239b8685c1a3972a93c6a515e85477b082312a7c5",
+        "extreme_rates": "376a7e13383a151d086d0a9678905c005765b3a69391ae1bdfdca33ff4f31a3f",
+        "hidden_branch": "cd9f798a6a425202ef096de69369b35333e557157802de5c428166e41bab41b1",
+        "many_small": "4bbc331e1fa91550a6656ba4bbd9d187e2bbd5103e42baef64059767fc9ab097",
+        "null": "09381e5c8766751060d50c05cf072785326169629b865841917a17fd466083fb",
+    }
+    assert {name: design_fingerprint(load_design(name)) for name in UNCLUSTERED} == recorded
+    assert "clusters=Clustering(" in repr(load_design("clustered"))
+
+
+def test_the_clustered_design_assigns_whole_clusters():
+    trial = simulate("clustered", seed=3)
+    design, data = trial.design, trial.data
+    roles, column = design.roles, design.clusters.column
+    assert list(data.columns[:5]) == [roles.id, roles.site, roles.treatment, roles.outcome, column]
+    assert len(data) == 2000 and list(trial.truth["cluster"]) == list(data[column])
+    summary = cluster_design(data[roles.treatment], data[column], data[roles.site])  # also checks nesting
+    assert summary.cluster_randomized and summary.n_clusters == 80
+    for site, (treated, control, mixed) in summary.per_site.items():
+        assert treated == round(design.rates[site] * 20) and treated + control == 20 and mixed == 0
+    for _, part in data.groupby(roles.site):
+        sizes = part.groupby(column).size()
+        assert sizes.max() - sizes.min() <= 1  # round-robin deal inside the site
+    X = data[["leader_years", "evening_circle", "age", "free_meal"]].to_numpy(float)
+    levels = cluster_level_columns(X, data[column], data[roles.site], ["leader_years", "evening_circle", "age",
+                                                                      "free_meal"])
+    assert levels.cluster_level == ("leader_years", "evening_circle") and levels.unit_level == ("age", "free_meal")
+    effects = trial.truth.groupby("cluster")["cluster_effect"].agg(["min", "max"])
+    assert np.all(effects["min"] == effects["max"])
+    assert load_design("clustered").to_dict()["clusters"]["icc"] == 0.2
+
+
+CLUSTER_DESIGN = """
+description = "two sites, many small clusters"
+default_n = 4000
+[roles]
+outcome = "y"
+treatment = "w"
+site = "s"
+id = "id"
+cluster = "k"
+[clusters]
+per_site = {per_site}
+icc = {icc}
+assignment = "{assignment}"
+covariates = {covariates}
+[[covariates]]
+name = "c"
+kind = "normal"
+mean = 0
+sd = 1
+[[covariates]]
+name = "x"
+kind = "normal"
+mean = "{x_mean}"
+sd = 1
+[outcome]
+baseline = "x"
+noise_sd = 1
+[effect]
+tau = "1"
+[[sites]]
+name = "A"
+share = 1
+rate = 0.5
+[[sites]]
+name = "B"
+share = 1
+rate = 0.25
+"""
+
+
+def _cluster_file(tmp_path: Path, name: str = "k.toml", per_site: int = 1000, icc: float = 0.2,
+                  assignment: str = "cluster", covariates: str = '["c"]', x_mean: str = "0.5*c") -> Path:
+    text = CLUSTER_DESIGN.format(per_site=per_site, icc=icc, assignment=assignment, covariates=covariates,
+                                 x_mean=x_mean)
+    return _write(tmp_path, text, name)
+
+
+def test_cluster_effect_has_the_declared_intraclass_correlation(tmp_path):
+    trial = simulate(_cluster_file(tmp_path), seed=1)
+    effects = trial.truth.groupby("cluster")["cluster_effect"].first()
+    # σ_c² = icc/(1 − icc)·σ² = 0.25; a variance from G normal draws has SE σ_c²·√(2/(G − 1))
+    assert abs(effects.var() - 0.25) <= 4 * 0.25 * math.sqrt(2 / (effects.size - 1))
+    noise = trial.data["y"] - trial.truth["mu0"] - trial.data["w"] * trial.truth["tau"] - trial.truth["cluster_effect"]
+    assert abs(noise.var() - 1.0) <= 4 * math.sqrt(2 / (len(noise) - 1))
+    per_cluster = trial.data.groupby("k")["c"].nunique()
+    assert per_cluster.max() == 1 and trial.data.groupby("k")["w"].nunique().max() == 1
+
+
+def test_clusters_with_unit_assignment_leave_the_other_draws_unchanged(tmp_path):
+    # the clusters stream is separate: with icc = 0, unit assignment and no cluster-level covariate, the data
+    # are those of the same design without clusters, plus the cluster column
+    with_clusters = simulate(_cluster_file(tmp_path, icc=0.0, assignment="unit", covariates="[]"), seed=4)
+    plain_text = CLUSTER_DESIGN.split("[clusters]")[0].replace('cluster = "k"\n', "") + \
+        "[[covariates]]" + CLUSTER_DESIGN.split("[[covariates]]", 1)[1].format(x_mean="0.5*c")
+    plain = simulate(_write(tmp_path, plain_text, "plain.toml"), seed=4)
+    pd.testing.assert_frame_equal(with_clusters.data.drop(columns="k"), plain.data)
+    for site, part in with_clusters.data.groupby("s"):
+        assert int(part["w"].sum()) == int(round(with_clusters.rates[site] * len(part)))
+
+
+@pytest.mark.parametrize(
+    ("change", "key"),
+    [
+        ({"assignment": "classroom"}, "clusters.assignment"),
+        ({"covariates": '["nope"]'}, "clusters.covariates"),
+        ({"icc": 1.0}, "clusters.icc"),
+        ({"per_site": 0}, "clusters.per_site"),
+        ({"covariates": '["x"]', "x_mean": "0.5*c"}, "covariates[x].mean"),  # cluster level sees no unit level
+    ],
+)
+def test_cluster_mistakes_name_the_key(tmp_path, change, key):
+    with pytest.raises(SiteproofError) as err:
+        load_design(_cluster_file(tmp_path, **change))
+    assert key in str(err.value)
+
+
+def test_cluster_table_and_column_go_together_and_need_enough_units(tmp_path):
+    text = CLUSTER_DESIGN.format(per_site=10, icc=0.2, assignment="cluster", covariates="[]", x_mean="0")
+    with pytest.raises(SiteproofError, match="roles.cluster"):
+        load_design(_write(tmp_path, text.replace('cluster = "k"\n', ""), "a.toml"))
+    with pytest.raises(SiteproofError, match="roles.cluster"):
+        without_table = text.split("[clusters]")[0] + "[[covariates]]" + text.split("[[covariates]]", 1)[1]
+        load_design(_write(tmp_path, without_table, "b.toml"))
+    with pytest.raises(SiteproofError, match="units for its"):
+        simulate(_cluster_file(tmp_path, per_site=1000), n=500, seed=0)
+
+
+def test_per_site_cluster_counts_and_cluster_level_missing_values(tmp_path):
+    text = _cluster_file(tmp_path, per_site=30).read_text(encoding="utf-8")
+    trial = simulate(_write(tmp_path, text.replace("per_site = 30\n", "per_site = 30\ncounts = { B = 7 }\n"),
+                            "counts.toml"), n=400, seed=2)
+    assert trial.data.groupby("s")["k"].nunique().to_dict() == {"A": 30, "B": 7}
+    treated = trial.data.groupby("k").agg(s=("s", "first"), w=("w", "first")).groupby("s")["w"].sum()
+    assert treated.to_dict() == {"A": 15, "B": 2}  # round(0.5·30), round(0.25·7)
+    missing = text.replace('name = "c"\nkind = "normal"\n', 'name = "c"\nkind = "normal"\nmissing = 0.1\n')
+    with pytest.raises(SiteproofError, match="clusters.covariates"):
+        load_design(_write(tmp_path, missing, "missing.toml"))

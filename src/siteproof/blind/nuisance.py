@@ -29,6 +29,7 @@ from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from ..core.checks import finite_matrix, finite_vector
+from ..core.clusters import cluster_codes
 from ..core.errors import SiteproofError
 from ..core.learners import fit_model, predict_model
 
@@ -38,12 +39,13 @@ _RIDGE_ALPHAS = tuple(float(a) for a in np.logspace(-3, 3, 13))
 _ROW_BLOCK = 1 << 15
 
 
-def make_folds(w: np.ndarray, k: int = 5, seed: int = 0) -> np.ndarray:
+def make_folds(w: np.ndarray, k: int = 5, seed: int = 0, groups: Any = None) -> np.ndarray:
     """Fold ids 0..k−1 stratified on treatment: each arm is shuffled (seeded) and dealt round-robin.
 
     The treated arm's deal starts where the control arm's ended, so fold sizes differ by at most one and
     each arm's fold counts differ by at most one.  An arm with fewer than k units cannot be split (some
-    fold would lack that arm) and raises :class:`SiteproofError`.
+    fold would lack that arm) and raises :class:`SiteproofError`.  With ``groups`` (one cluster label per
+    unit) whole groups are dealt instead, see :func:`_group_folds`.
     """
     w = _as_treatment(w)
     if int(k) != k or k < 2:
@@ -51,6 +53,8 @@ def make_folds(w: np.ndarray, k: int = 5, seed: int = 0) -> np.ndarray:
             f"the number of folds must be an integer ≥ 2, got {k}", "use k = 5 (the default) or more"
         )
     k = int(k)
+    if groups is not None:
+        return _group_folds(w, k, seed, groups)
     rng = np.random.default_rng(seed)
     folds = np.empty(w.size, dtype=np.int64)
     offset = 0
@@ -65,6 +69,42 @@ def make_folds(w: np.ndarray, k: int = 5, seed: int = 0) -> np.ndarray:
         folds[idx[rng.permutation(idx.size)]] = (np.arange(idx.size) + offset) % k
         offset = (offset + idx.size) % k
     return folds
+
+
+def _group_folds(w: np.ndarray, k: int, seed: int, groups: Any) -> np.ndarray:
+    """Fold ids with no group split across folds, balanced on both arms by a seeded greedy deal.
+
+    Groups are taken largest first (a seeded shuffle breaks ties in size) and each goes to the fold where it
+    raises Σ_f Σ_a (c_fa / N_a)² least — c_fa the fold's units of arm a, N_a the arm's total — i.e. the fold
+    whose arm shares it fills least (ties: a seeded random fold).  A group of one arm thus goes to the fold
+    with the fewest units of that arm, so each arm's fold counts differ by at most that arm's largest group
+    (list scheduling, Graham 1969).  Keeping groups whole stops a unit's out-of-fold models from training
+    on its cluster-mates, who carry its cluster's arm and outcome level.  Fewer groups than folds, or a
+    fold left without one arm, raise :class:`SiteproofError`.
+    """
+    codes, labels = cluster_codes(groups, w.size)
+    n_groups = labels.size
+    if n_groups < k:
+        raise SiteproofError(f"{n_groups} groups cannot fill {k} folds without splitting a group",
+                             "use fewer folds or data with more clusters")
+    arms = np.column_stack([np.bincount(codes, weights=1.0 - w, minlength=n_groups),
+                            np.bincount(codes, weights=w.astype(float), minlength=n_groups)])
+    totals = np.maximum(arms.sum(axis=0), 1.0)
+    rng = np.random.default_rng(seed)
+    order = rng.permutation(n_groups)
+    order = order[np.argsort(-arms[order].sum(axis=1), kind="stable")]
+    counts = np.zeros((k, 2))
+    group_fold = np.empty(n_groups, dtype=np.int64)
+    for g in order:
+        raise_by = ((arms[g] * (2.0 * counts + arms[g])) / totals ** 2).sum(axis=1)
+        fold = int(np.lexsort((rng.random(k), raise_by))[0])
+        group_fold[g] = fold
+        counts[fold] += arms[g]
+    empty = np.flatnonzero(counts.min(axis=1) == 0)
+    if empty.size:
+        raise SiteproofError(f"fold {int(empty[0])} has no unit of one arm when whole groups are kept together",
+                             "use fewer folds or data with more clusters in each arm")
+    return group_fold[codes]
 
 
 @dataclass(frozen=True)

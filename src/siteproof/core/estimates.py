@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .clusters import cluster_mean_se
 from .results import ResultsMixin
 
 _NORMAL = NormalDist()
@@ -28,10 +29,17 @@ def normal_ci(estimate: float, se: float, level: float = 0.95) -> tuple[float, f
     return (float(estimate - z * se), float(estimate + z * se))
 
 
-def mean_and_se(scores: np.ndarray) -> tuple[float, float]:
-    """Mean of per-unit scores and its SE, sd(ψ)/√n with the n−1 divisor."""
+def mean_and_se(scores: np.ndarray, clusters: Any = None) -> tuple[float, float]:
+    """Mean of per-unit scores and its SE, sd(ψ)/√n with the n−1 divisor.
+
+    With ``clusters`` (one label per unit) the SE is the cluster-robust one of
+    :func:`siteproof.core.clusters.cluster_mean_se` (Liang & Zeger 1986), which equals sd(ψ)/√n when every
+    cluster has one unit.
+    """
     scores = np.asarray(scores, dtype=float)
     n = scores.size
+    if clusters is not None and n:
+        return float(scores.mean()), cluster_mean_se(scores, clusters)
     if n < 2:
         return float(np.mean(scores)) if n else float("nan"), float("nan")
     return float(scores.mean()), float(scores.std(ddof=1) / np.sqrt(n))
@@ -50,9 +58,10 @@ class Estimate(ResultsMixin):
     note: str = ""
 
     @classmethod
-    def from_scores(cls, name: str, scores: np.ndarray, estimand: str = "ATE", note: str = "") -> "Estimate":
-        """Estimate = mean(ψ), SE = sd(ψ)/√n, CI = Wald 95%."""
-        est, se = mean_and_se(scores)
+    def from_scores(cls, name: str, scores: np.ndarray, estimand: str = "ATE", note: str = "",
+                    clusters: Any = None) -> "Estimate":
+        """Estimate = mean(ψ), SE = sd(ψ)/√n (cluster-robust with ``clusters``), CI = Wald 95%."""
+        est, se = mean_and_se(scores, clusters)
         return cls(name, est, se, normal_ci(est, se), estimand, np.asarray(scores, dtype=float), note)
 
     @classmethod

@@ -8,11 +8,15 @@ depend on each other, the control-arm mean μ₀(x) and the unit effect τ(x) as
 
 The hidden site effect is h_s = strength · z_s with z_s = (rate_s − mean(rate)) / sd(rate) (unweighted over
 sites, population SD) when it *tracks the rate*, or z_s declared per site.
+
+A scenario may also put its units in *clusters* nested in the sites (classrooms within schools): a number of
+clusters per site, cluster-level covariates drawn once per cluster, a cluster random effect set by its
+intraclass correlation, and assignment of whole clusters (:class:`Clustering`).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field, fields
 from typing import Any
 
 import numpy as np
@@ -106,6 +110,33 @@ class CostModel:
 
 
 @dataclass(frozen=True)
+class Clustering:
+    """Clusters nested in the sites: column name, clusters per site, cluster-level covariates, ICC, assignment.
+
+    ``counts`` is (site, number of clusters) in site order.  The cluster random effect is u_c ~ N(0, σ_c²) with
+    σ_c² = icc/(1 − icc)·σ² (σ the outcome noise SD), so the outcome noise u_c + σε has intraclass correlation
+    ``icc``.  ``assignment`` is ``"cluster"`` (round(rate_s·G_s) whole clusters treated per site) or ``"unit"``
+    (units randomized within sites as without clusters).
+    """
+
+    column: str
+    counts: tuple[tuple[str, int], ...]
+    covariates: tuple[str, ...] = ()
+    icc: float = 0.0
+    assignment: str = "cluster"
+    id_prefix: str = "K"
+
+    def cluster_sd(self, noise_sd: float) -> float:
+        """σ_c = σ·√(icc/(1 − icc))."""
+        return float(noise_sd * (self.icc / (1.0 - self.icc)) ** 0.5)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready summary."""
+        return {"column": self.column, "counts": dict(self.counts), "covariates": list(self.covariates),
+                "icc": self.icc, "assignment": self.assignment}
+
+
+@dataclass(frozen=True)
 class Scenario:
     """A synthetic multi-site trial, as loaded from a synthetic_sites TOML file."""
 
@@ -124,6 +155,17 @@ class Scenario:
     roles: Roles
     id_prefix: str = "u"
     source: str = ""
+    clusters: Clustering | None = field(default=None, repr=False)
+
+    def __repr__(self) -> str:
+        """The dataclass repr, with ``clusters`` shown only when the scenario has clusters.
+
+        A scenario without clusters keeps the repr (and so the study-folder fingerprint) it had before
+        clusters existed.
+        """
+        shown = [f for f in fields(self) if f.repr or (f.name == "clusters" and self.clusters is not None)]
+        inner = ", ".join(f"{f.name}={getattr(self, f.name)!r}" for f in shown)
+        return f"{type(self).__qualname__}({inner})"
 
     @property
     def rates(self) -> dict[str, float]:
@@ -159,4 +201,5 @@ class Scenario:
             "hidden": {"strength": self.hidden.strength, "tracks": self.hidden.tracks, "arm": self.hidden.arm},
             "baseline": self.baseline,
             "effect": self.effect,
+            **({"clusters": self.clusters.to_dict()} if self.clusters is not None else {}),
         }

@@ -19,7 +19,7 @@ import numpy as np
 
 from ..core.errors import SiteproofError
 from .expressions import FUNCTIONS, Scope, check_expression
-from .scenario import MIN_N, CostModel, Covariate, EnrollRule, HiddenEffect, Roles, Scenario, Site
+from .scenario import MIN_N, Clustering, CostModel, Covariate, EnrollRule, HiddenEffect, Roles, Scenario, Site
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -48,7 +48,8 @@ _RULE_KEYS: dict[str, set[str]] = {
     "derived": set(),
 }
 _TOP_KEYS = {"description", "default_n", "id_prefix", "extends", "roles", "parameters", "covariates", "helpers",
-             "outcome", "effect", "cost", "hidden", "sites", "rates"}
+             "outcome", "effect", "cost", "hidden", "sites", "rates", "clusters"}
+_CLUSTER_ASSIGNMENTS = ("cluster", "unit")
 
 
 def list_designs() -> list[str]:
@@ -213,6 +214,7 @@ def _build_scenario(raw: dict[str, Any], name: str, origin: str) -> Scenario:
     effect.allow({"tau"})
     cost = _parse_cost(raw.get("cost"), origin)
     roles = _parse_roles(raw.get("roles"), covariates, cost is not None, origin)
+    clusters = _parse_clusters(raw.get("clusters"), raw.get("roles"), sites, covariates, origin)
     scenario = Scenario(
         name=name,
         description=top.text("description"),
@@ -229,6 +231,7 @@ def _build_scenario(raw: dict[str, Any], name: str, origin: str) -> Scenario:
         roles=roles,
         id_prefix=top.text("id_prefix", "u"),
         source=origin,
+        clusters=clusters,
     )
     _check_names_unique(scenario, origin)
     _check_all_expressions(scenario, origin)
@@ -433,7 +436,7 @@ def _parse_cost(table: Any, origin: str) -> CostModel | None:
 def _parse_roles(table: Any, covariates: tuple[Covariate, ...], has_cost: bool, origin: str) -> Roles:
     """The ``[roles]`` column names; a cost column exactly when a ``[cost]`` table is given."""
     reader = _Reader(table, "roles", origin)
-    reader.allow({"outcome", "treatment", "site", "id", "cost"})
+    reader.allow({"outcome", "treatment", "site", "id", "cost", "cluster"})
     cost = reader.text("cost") if "cost" in reader.table else None
     if (cost is not None) != has_cost:
         raise reader.fail("cost", "and the [cost] table must be given together",
@@ -442,11 +445,50 @@ def _parse_roles(table: Any, covariates: tuple[Covariate, ...], has_cost: bool, 
                  id=reader.text("id"), cost=cost, covariates=tuple(c.name for c in covariates))
 
 
+def _parse_clusters(table: Any, roles: Any, sites: tuple[Site, ...], covariates: tuple[Covariate, ...],
+                    origin: str) -> Clustering | None:
+    """The optional ``[clusters]`` table; the cluster column is ``roles.cluster`` (both or neither)."""
+    column = roles.get("cluster") if isinstance(roles, dict) else None
+    if (table is None) != (column is None):
+        raise SiteproofError(f"{origin}: 'roles.cluster' and the [clusters] table must be given together",
+                             "name the cluster column in [roles] and describe the clusters in [clusters], or drop both")
+    if table is None:
+        return None
+    reader = _Reader(table, "clusters", origin)
+    reader.allow({"per_site", "counts", "covariates", "icc", "assignment", "id_prefix"})
+    per_site = reader.integer("per_site", low=1)
+    counts = _Reader(table.get("counts", {}), "clusters.counts", origin)
+    names = [site.name for site in sites]
+    for key in counts.table:
+        if key not in names:
+            raise counts.fail(key, "is not a site of this design", f"use one of {', '.join(names)}")
+    assignment = reader.text("assignment", "cluster")
+    if assignment not in _CLUSTER_ASSIGNMENTS:
+        raise reader.fail("assignment", f"= {assignment!r} is not 'cluster' or 'unit'", 'write assignment = "cluster"')
+    level = table.get("covariates", [])
+    by_name = {c.name: c for c in covariates}
+    if not isinstance(level, list) or not all(isinstance(v, str) and v in by_name for v in level):
+        raise reader.fail("covariates", "must list covariates of this design", f"use names among {', '.join(by_name)}")
+    for name in level:
+        if by_name[name].missing:
+            raise reader.fail("covariates", f"includes '{name}', which has a missing share",
+                              "drop 'missing' from cluster-level covariates")
+    return Clustering(
+        column=_Reader(roles, "roles", origin).text("cluster"),
+        counts=tuple((name, counts.integer(name, low=1) if name in counts.table else per_site) for name in names),
+        covariates=tuple(c.name for c in covariates if c.name in level),
+        icc=reader.number("icc", 0.0, low=0.0, high=1.0, open_high=True),
+        assignment=assignment,
+        id_prefix=reader.text("id_prefix", "K"),
+    )
+
+
 def _check_names_unique(scenario: Scenario, origin: str) -> None:
     """No name used twice among the columns, parameters and helpers."""
     roles = scenario.roles
     columns = [roles.id, roles.site, roles.treatment, roles.outcome, *roles.covariates]
     columns += [roles.cost] if roles.cost else []
+    columns += [scenario.clusters.column] if scenario.clusters else []
     names = columns + [p for p, _ in scenario.parameters] + [h for h, _ in scenario.helpers]
     clash = sorted({n for n in names if names.count(n) > 1})
     if clash:
@@ -455,12 +497,19 @@ def _check_names_unique(scenario: Scenario, origin: str) -> None:
 
 
 def _check_all_expressions(scenario: Scenario, origin: str) -> None:
-    """Check every expression against the names defined before it (parameters, earlier covariates, helpers)."""
+    """Check every expression against the names defined before it (parameters, earlier covariates, helpers).
+
+    A cluster-level covariate sees only the parameters and the cluster-level covariates above it.
+    """
     numeric = {p for p, _ in scenario.parameters}
     categorical: dict[str, tuple[str, ...]] = {}
+    cluster_level = set(scenario.clusters.covariates) if scenario.clusters else set()
+    cluster_numeric = set(numeric)
+    cluster_categorical: dict[str, tuple[str, ...]] = {}
     before: dict[str, Scope] = {}
     for cov in scenario.covariates:
-        scope = Scope(numeric, categorical)
+        at_cluster = cov.name in cluster_level
+        scope = Scope(cluster_numeric, cluster_categorical) if at_cluster else Scope(numeric, categorical)
         before[cov.name] = scope
         key = f"{origin}: covariates[{cov.name}]"
         for param, value in cov.params:
@@ -470,8 +519,12 @@ def _check_all_expressions(scenario: Scenario, origin: str) -> None:
                                      scope)
         if cov.kind == "categorical":
             categorical[cov.name] = cov.levels
+            if at_cluster:
+                cluster_categorical[cov.name] = cov.levels
         else:
             numeric.add(cov.name)
+            if at_cluster:
+                cluster_numeric.add(cov.name)
     for site in scenario.sites:
         for rule in site.enroll:
             for bound in ("lower", "upper"):

@@ -22,6 +22,13 @@ scenario does not reshuffle the others):
 6. missing values: each covariate value is blanked independently with its declared share (missing completely
    at random), after steps 2–5, so the outcome always depends on the true values.
 
+With clusters (``[clusters]``, :class:`~siteproof.simulation.scenario.Clustering`), after step 1 each site's
+units are dealt to its G_s clusters (sizes differ by at most one), cluster-level covariates are drawn once per
+cluster in step 2, whole clusters are assigned in step 3 (round(rate_s·G_s) treated clusters) when
+``assignment = "cluster"``, and the outcome of step 4 gains the cluster effect u_c ~ N(0, σ²·icc/(1 − icc)).
+The data then has the cluster column (after the outcome) and the truth the columns ``cluster`` and
+``cluster_effect``.
+
 The hidden site effect h_s (:meth:`Scenario.hidden_values`), added to both arms, shifts the outcome level of
 whole sites in step with their assignment rate, so P(W = 1 | X, level) ≠ P(W = 1 | X) and unconfoundedness
 given X fails although every site is a randomized experiment.
@@ -77,19 +84,26 @@ def simulate(scenario: Scenario | str | Path, n: int | None = None, seed: int = 
     n = scenario.default_n if n is None else _check_n(n)
     rng = streams(seed)
     units = draw_units(scenario, n, rng)
-    w = assign(scenario, units["site_idx"], rng["assignment"])
+    groups = units["groups"]
+    w = assign(scenario, units["site_idx"], rng["assignment"], groups)
     y = units["mu0"] + w * units["tau"] + scenario.noise_sd * rng["noise"].standard_normal(n)
+    if groups is not None:
+        y = y + groups.effect[groups.unit]
     ids = unit_ids(scenario.id_prefix, n)
     site_names = np.array([s.name for s in scenario.sites], dtype=object)[units["site_idx"]]
     roles = scenario.roles
     columns: dict[str, Any] = {roles.id: ids, roles.site: site_names, roles.treatment: w.astype(np.int64),
                                roles.outcome: y}
+    if groups is not None and scenario.clusters is not None:
+        columns[scenario.clusters.column] = groups.labels[groups.unit]
     columns.update(observed_covariates(scenario, units["covariates"], rng["missing"]))
     if scenario.cost is not None and roles.cost is not None:
         columns[roles.cost] = draw_cost(scenario.cost, units["env"], rng["cost"], n)
     truth = pd.DataFrame({
         "id": ids, "site": site_names, "e_true": units["e_true"], "mu0": units["mu0"],
         "mu1": units["mu0"] + units["tau"], "tau": units["tau"], "hidden": units["hidden"],
+        **({"cluster": groups.labels[groups.unit], "cluster_effect": groups.effect[groups.unit]}
+           if groups is not None else {}),
     })
     return SimulatedTrial(scenario, pd.DataFrame(columns), truth, scenario.rates, seed)
 
