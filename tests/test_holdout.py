@@ -26,6 +26,7 @@ from siteproof.benchmark.holdout import (
     leaderboard_html,
     leaderboard_table,
     read_key,
+    read_submission,
     seal_benchmark,
     write_leaderboard,
 )
@@ -36,6 +37,7 @@ from siteproof.intake.study import StudySpec
 N = 1500
 SEED = 11
 LEARNERS = {"mu0": RidgeCV(), "mu1": RidgeCV()}
+SECRET = hashlib.sha256(b"a fixed sealing secret, so that the tests are reproducible").hexdigest()
 
 
 # ─────────────────────────── fixtures ───────────────────────────
@@ -65,8 +67,9 @@ def sealed(trial, tmp_path_factory):
     """The demo trial sealed once (no cost role: coaching_cost is then an ordinary covariate)."""
     root = tmp_path_factory.mktemp("bench")
     trial.data.to_csv(root / "demo.csv", index=False)
+    (root / "secret.txt").write_text(SECRET)
     spec = _spec(trial, root / "demo.csv")
-    result = _seal(spec, root / "bench")
+    result = _seal(spec, root / "bench", secret_file=root / "secret.txt")
     return spec, result, root
 
 
@@ -144,12 +147,19 @@ def test_audit_flags_every_kind_of_site_leak():
     assert "\n" not in line and all(name in line for name in leaks)
 
 
-def test_audit_reports_row_order_without_stopping():
+def test_sorted_row_order_stops_sealing_until_accepted():
     frame = _site_frame().sort_values("site", kind="stable").reset_index(drop=True)
     audit = audit_columns(frame, "site", ["noise"], seed=1)
     order = audit.rows[-1]
     assert order.column == "(row order)" and order.accuracy > 0.95
-    assert not order.flagged and "shuffled" in order.decision
+    assert order.flagged and order.decision == "unresolved"
+    with pytest.raises(SiteproofError, match="--accept-row-order"):
+        require_no_leaks(audit)
+    accepted = audit_columns(frame, "site", ["noise"], seed=1, accept_row_order=True)
+    assert accepted.rows[-1].decision.startswith("accepted")
+    require_no_leaks(accepted)  # confirmed: the public rows are shuffled with a secret
+    shuffled = audit_columns(frame.sample(frac=1.0, random_state=0), "site", ["noise"], seed=1)
+    assert not shuffled.rows[-1].flagged
 
 
 def test_audit_unknown_or_contradictory_columns_are_errors():
@@ -209,16 +219,26 @@ def test_public_folder_holds_no_site_and_no_key(sealed, trial):
     assert (sites_in_file_order[1:] != sites_in_file_order[:-1]).mean() > 0.5  # rows are shuffled
 
 
-def test_seal_is_deterministic_given_the_seed(sealed, tmp_path):
+def test_seal_is_reproduced_by_its_secret_and_not_by_its_seed(sealed, tmp_path):
     spec, result, _ = sealed
-    again = _seal(spec, tmp_path / "again")
+    secret = result.out_dir / "key" / "secret.txt"
+    again = _seal(spec, tmp_path / "again", secret_file=secret)
     first = sorted(p for p in result.out_dir.rglob("*") if p.is_file())
     second = sorted(p for p in again.out_dir.rglob("*") if p.is_file())
     assert [p.relative_to(result.out_dir) for p in first] == [p.relative_to(again.out_dir) for p in second]
     for a, b in zip(first, second):
         assert a.read_bytes() == b.read_bytes(), a.name
-    other = _seal(replace(spec, seed=SEED + 1), tmp_path / "other")
-    assert other.public_sha256 != result.public_sha256
+    fresh = _seal(spec, tmp_path / "fresh")  # same table, same seed, new secret: another public file
+    assert fresh.public_sha256 != result.public_sha256
+    fresh_key, key = read_key(fresh.out_dir / "key"), read_key(result.out_dir / "key")
+    assert not set(fresh_key.tokens) & set(key.tokens)
+    # the seed still drives the statistics: the key-side outcome models are the same for every unit
+    mu = key.units.set_index("row_key")[["mu0", "mu1"]].sort_index()
+    fresh_mu = fresh_key.units.set_index("row_key")[["mu0", "mu1"]].sort_index()
+    pd.testing.assert_frame_equal(mu, fresh_mu, rtol=1e-12, atol=1e-12)
+    (tmp_path / "bad.txt").write_text("2026\n")
+    with pytest.raises(SiteproofError, match="does not hold a sealing secret"):
+        _seal(spec, tmp_path / "bad", secret_file=tmp_path / "bad.txt")
 
 
 def test_seal_refuses_an_existing_benchmark_folder(sealed):
@@ -262,9 +282,11 @@ def test_oracle_ranks_first_and_metrics_match_theory(sealed, class_subs):
     oracle, rest = board.entries[0], board.entries[1:]
     assert oracle.rank == 1 and all(e.rank > 1 and e.tied_with != "oracle" for e in rest)
 
+    graded = key.graded
+    assert board.graded_on == "held-out units" and board.n_graded == graded.sum() == round(0.3 * N)
     # design-based AUTOC/Qini are unbiased for the same statistic computed with the true effects as scores
     for kind in ("autoc", "qini"):
-        infeasible = float(rank_metric(tau, tau, kind=kind, n_boot=2).estimate[0])
+        infeasible = float(rank_metric(tau[graded], tau[graded], kind=kind, n_boot=2).estimate[0])
         est = oracle.metrics[kind]
         assert abs(est.estimate - infeasible) < 3 * est.se, kind
     # BLP β₂ of the true CATE is 1; of pure noise 0
@@ -276,11 +298,15 @@ def test_oracle_ranks_first_and_metrics_match_theory(sealed, class_subs):
     assert abs(constant.metrics["autoc"].estimate) < 1e-9
     assert constant.metrics["rule_gain"].estimate == pytest.approx(0.0, abs=1e-12)
     assert np.isnan(constant.metrics["blp_beta2"].estimate)
-    # ATE error is the submitted value minus the design ATE, with the design ATE's SE
+    # ATE error: submitted value minus the design ATE of the graded units; SE from the per-unit differences
+    # d = â − Γ + (τ̂ − mean τ̂), here with τ̂ = τ: sd(Γ − τ)/√n, below the reference's own sd(Γ)/√n
     design = board.design_ate
+    gamma = design.scores
+    d = tau.mean() - gamma + (tau[graded] - tau[graded].mean())
     assert oracle.metrics["ate_error"].estimate == pytest.approx(tau.mean() - design.estimate, abs=1e-12)
-    assert oracle.metrics["ate_error"].se == pytest.approx(design.se)
-    assert abs(design.estimate - tau.mean()) < 3 * design.se  # unbiased for the sample ATE (Neyman 1923)
+    assert oracle.metrics["ate_error"].se == pytest.approx(d.std(ddof=1) / np.sqrt(d.size), rel=1e-12)
+    assert oracle.metrics["ate_error"].se < design.se
+    assert abs(design.estimate - tau[graded].mean()) < 3 * design.se  # unbiased for the graded units' ATE
     assert oracle.ci_covers == (tau.mean() - 1.96 * 0.5 <= design.estimate <= tau.mean() + 1.96 * 0.5)
 
     by_rule = grade_submissions(result.out_dir / "key", [folder], rank_by="rule_gain")
@@ -317,6 +343,7 @@ def test_unranked_when_the_metric_is_missing(sealed, class_subs, tmp_path):
         (lambda f: f.assign(treat=f["treat"].where(f.index != 3, 2)), "not 0 or 1"),
         (lambda f: f.rename(columns={"token": "id"}), "no 'token' column"),
         (lambda f: f[["token"]], "neither a 'tau_hat' nor a 'treat'"),
+        (lambda f: f.rename(columns={"treat": "treatment"}), "'treatment' that is not recognised.*token, tau_hat"),
     ],
 )
 def test_bad_submissions_are_refused(sealed, class_subs, tmp_path, edit, message):
@@ -325,9 +352,13 @@ def test_bad_submissions_are_refused(sealed, class_subs, tmp_path, edit, message
     frame = edit(pd.read_csv(folder / "random.csv", dtype={"token": str}))
     bad = tmp_path / "bad.csv"
     frame.to_csv(bad, index=False)
+    key = read_key(result.out_dir / "key")
     with pytest.raises(SiteproofError, match=message) as err:
-        grade_submissions(result.out_dir / "key", [bad])
+        read_submission(bad, key)
     assert "bad.csv" in str(err.value)
+    board = grade_submissions(result.out_dir / "key", [bad])  # in a batch: listed, not graded, with the reason
+    entry = board.entries[0]
+    assert entry.rank is None and not entry.metrics and entry.problem == " ".join(str(err.value).split())
 
 
 def test_submission_toml_for_another_benchmark_is_refused(sealed, class_subs, tmp_path):
@@ -335,7 +366,7 @@ def test_submission_toml_for_another_benchmark_is_refused(sealed, class_subs, tm
     folder, key, tau = class_subs
     _write_sub(tmp_path, "mine", key.tokens, tau, toml='benchmark = "000000000000"\n[ate]\nestimate = 1.0\nse = 0.1\n')
     with pytest.raises(SiteproofError, match="made for benchmark"):
-        grade_submissions(result.out_dir / "key", [tmp_path / "mine.csv"])
+        read_submission(tmp_path / "mine.csv", key)
 
 
 def test_tampered_public_file_is_detected(sealed, class_subs, tmp_path):
@@ -393,11 +424,12 @@ def test_unknown_rank_metric_and_missing_key(sealed, class_subs, tmp_path):
 def test_rank_by_ate_error_uses_absolute_error_and_paired_ties(sealed, class_subs, tmp_path):
     _, result, _ = sealed
     _, key, tau = class_subs
-    design = key.meta["design_ate"]
-    d, se = design["estimate"], design["se"]
+    probe = _write_sub(tmp_path / "probe", "probe", key.tokens, tau, toml="[ate]\nestimate = 0.0\nse = 1.0\n")
+    first = grade_submissions(result.out_dir / "key", [probe]).entries[0]
+    d, se = -first.metrics["ate_error"].estimate, first.metrics["ate_error"].se  # design ATE and the error's SE
     for name, shift in (("close_above", 0.1), ("close_below", -0.2), ("far", 5.0)):
         _write_sub(tmp_path, name, key.tokens, tau, toml=f"[ate]\nestimate = {d + shift * se!r}\nse = {se!r}\n")
-    board = grade_submissions(result.out_dir / "key", [tmp_path], rank_by="ate_error")
+    board = grade_submissions(result.out_dir / "key", [tmp_path], rank_by="ate_error", withhold_answers=False)
     by_name = {e.name: e for e in board.entries}
     assert [e.name for e in board.entries] == ["close_above", "close_below", "far"]
     # |0.1·SE| vs |0.2·SE| differ by far less than the reference's own uncertainty: tied
@@ -406,4 +438,3 @@ def test_rank_by_ate_error_uses_absolute_error_and_paired_ties(sealed, class_sub
     assert by_name["far"].rank == 3 and by_name["far"].tied_with is None
     assert by_name["far"].metrics["ate_error"].estimate == pytest.approx(5.0 * se, rel=1e-9)
     assert by_name["far"].ci_covers is False and by_name["close_above"].ci_covers is True
-

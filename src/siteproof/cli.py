@@ -24,6 +24,7 @@ except ImportError:  # pragma: no cover - older typer uses the click package
     import click
 
 from . import __version__
+from .benchmark.layout import DEFAULT_HOLDOUT_SHARE
 from .core.errors import SiteproofError, SiteproofWarning
 from .intake.flags import DataFlags, spec_from_flags, split_list
 
@@ -289,7 +290,9 @@ def report(
 def seal(
     flags: DataFlags,
     out: Annotated[Path, typer.Option("--out", help="Benchmark folder (public/ and key/ are written inside).")],
-    holdout_share: Annotated[float, typer.Option("--holdout-share", help="Share of units whose outcome and treatment are blanked and graded (0 = grade every unit).")] = 0.0,
+    holdout_share: Annotated[float, typer.Option("--holdout-share", help="Share of units whose outcome and treatment are blanked; only they are graded (0 = grade every published unit, in-sample).")] = DEFAULT_HOLDOUT_SHARE,
+    secret_file: Annotated[Optional[Path], typer.Option("--secret-file", help="Reuse the sealing secret of an earlier seal (its key/secret.txt) to reproduce it byte for byte.", show_default=False)] = None,
+    accept_row_order: Annotated[bool, typer.Option("--accept-row-order", help="Seal although the source file's row order predicts the site (the public rows are shuffled with a secret).")] = False,
     force: ForceOpt = False,
 ) -> None:
     """Seal a holdout benchmark: leak audit, then public data for students and a key for the teacher."""
@@ -297,10 +300,13 @@ def seal(
     from .core.console import console
     from .benchmark.holdout import seal_benchmark
 
-    result = seal_benchmark(spec, out, holdout_share=holdout_share, force=force)
-    console.print(f"sealed {result.n:,} units ({result.n_graded:,} graded); "
+    result = seal_benchmark(spec, out, holdout_share=holdout_share, secret_file=secret_file,
+                            accept_row_order=accept_row_order, force=force)
+    graded = "held out and graded" if result.holdout_share > 0 else "graded in-sample (outcomes published)"
+    console.print(f"sealed {result.n:,} units ({result.n_graded:,} {graded}); "
                   f"design-based ATE {result.design_ate.estimate:.3f} (SE {result.design_ate.se:.3f}) kept in the key")
-    console.print(f"hand out: {Path(out) / 'public'}   keep sealed: {Path(out) / 'key'}")
+    console.print(f"hand out: {Path(out) / 'public'}   keep sealed: {Path(out) / 'key'} "
+                  f"(its secret.txt reproduces this seal)")
 
 
 @app.command()
@@ -310,15 +316,16 @@ def grade(
     out: OutOpt,
     rank_by: Annotated[str, typer.Option("--rank-by", help="autoc, qini, blp_beta2, rule_gain or ate_error.")] = "autoc",
     reveal: Annotated[bool, typer.Option("--reveal", help="Also show per-site results (lets students rebuild the key).")] = False,
+    withhold_answers: Annotated[bool, typer.Option("--withhold-answers/--show-answers", help="Keep the design-based answers (design ATE, ATE errors, CI coverage, per-site estimates) out of the leaderboard.")] = True,
     force: ForceOpt = False,
 ) -> None:
     """Grade submissions against a sealed key into a leaderboard (CSV, JSON, HTML)."""
     from .core.console import console
     from .benchmark.holdout import grade_submissions, leaderboard_table, write_leaderboard
 
-    board = grade_submissions(key, submissions, rank_by=rank_by, reveal=reveal)
+    board = grade_submissions(key, submissions, rank_by=rank_by, reveal=reveal, withhold_answers=withhold_answers)
     write_leaderboard(board, out, force=force)
-    console.print(leaderboard_table(board))
+    console.print(leaderboard_table(board, width=min(console.width, 80)))
     console.print(f"leaderboard: {Path(out) / 'leaderboard.html'}")
 
 

@@ -14,12 +14,19 @@ alone is honest:
   (W − e_S)(τ̂ − τ̄)] with weights 1/(e_S(1 − e_S)), HC2 SE (Chernozhukov, Demirer, Duflo & Fernández-Val);
 * **rule gain** of the submitted ``treat`` over random allocation with the same treated share q̂,
   mean[(π − q̂)(D − D̄)] with D = Γ₁ − Γ₀ − cost (Imai & Li 2023), SE from its influence function;
-* **ATE error**: submitted ATE − design-based pooled ATE Σ_s (n_s/n)·DiM_s, SE that of the design ATE (the
-  submission is one number, so there are no per-unit scores to pair with); and whether the submitted 95 % CI
-  covers the design ATE.
+* **ATE error**: submitted ATE − the design-based ATE of the graded units, Γ̄ (the known-rate AIPW mean). Its SE
+  is that of the submission's own error, from the per-unit differences d_i = â − Γ_i + (τ̂_i − mean τ̂) paired
+  with the design scores (the τ̂ term, zero on average, is present when the submission has ``tau_hat``):
+  sd(d)/√n. Since E[(Γ_i − τ̂_i)²] = Var(Γ_i) + (τ_i − τ̂_i)² ≥ Var(Γ_i), it is conservative for the sample
+  ATE's error, as Neyman's (1923) variance is, and tighter the better τ̂ tracks the unit effects. Whether the
+  submitted 95 % CI covers Γ̄ is reported beside it.
 
-The ranking and its ties are in :mod:`siteproof.benchmark.standings`. Nothing that names a site leaves the
-grader unless ``reveal=True``.
+Only the graded units count: with a holdout share (the default) the held-out ones, whose outcome and treatment
+were never published, so a prediction built from published outcomes gains nothing; without one every unit is
+graded and the leaderboard says the grading is in-sample. An invalid submission is listed without a rank, with
+the reason, and the others are graded. The ranking and its ties are in :mod:`siteproof.benchmark.standings`.
+Nothing that names a site leaves the grader unless ``reveal=True``; the design-based answers (the design ATE,
+ATE errors, CI coverage) are withheld from the outputs unless ``withhold_answers=False``.
 """
 
 from __future__ import annotations
@@ -37,9 +44,9 @@ from ..blind.rules import rule_value
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 from ..core.scores import arm_scores
-from ..intake.sitetrials import design_ate, site_table
+from ..intake.sitetrials import site_table
 from .key import BenchmarkKey, public_check, read_key
-from .standings import METRICS, GradedSubmission, Leaderboard, rank_entries
+from .standings import ANSWER_METRICS, METRICS, GradedSubmission, Leaderboard, rank_entries
 from .submissions import Submission, read_submission, submission_files
 
 
@@ -58,23 +65,21 @@ class _Grader:
     site: np.ndarray
     halves: np.ndarray
     design: Estimate
-    design_replicates: np.ndarray
     n_boot: int
     seed: int
 
     @classmethod
     def from_key(cls, key: BenchmarkKey, n_boot: int, seed: int) -> "_Grader":
-        """Scores of the graded units; the design ATE and its half-sample replicates over all benchmark units."""
+        """Scores of the graded units and their design-based ATE Γ̄ with SE sd(Γ)/√n."""
         u, g = key.units, key.graded
-        y, w, e, mu0, mu1 = (u[c].to_numpy(dtype=float) for c in ("y", "w", "rate", "mu0", "mu1"))
+        y, w, e, mu0, mu1 = (u[c].to_numpy(dtype=float)[g] for c in ("y", "w", "rate", "mu0", "mu1"))
         gamma0, gamma1 = arm_scores(y, w, e, mu0, mu1)
-        site = u["site"].to_numpy(dtype=object)
-        design = design_ate(y, w, site, _stratum(u)).estimate
-        design_replicates = _half_means(_halves(y.size, n_boot, seed + 1), np.asarray(design.scores))
+        design = Estimate.from_scores("design_ate", gamma1 - gamma0,
+                                      estimand="ATE of the graded units (AIPW with the known rates)")
         cost = u["cost"].to_numpy(dtype=float)[g] if u["cost"].notna().all() else None
-        return cls(graded=g, y=y[g], w=w[g], e=e[g], mu0=mu0[g], gamma0=gamma0[g], gamma1=gamma1[g], cost=cost,
-                   site=site[g], halves=_halves(int(g.sum()), n_boot, seed), design=design,
-                   design_replicates=design_replicates, n_boot=n_boot, seed=seed)
+        return cls(graded=g, y=y, w=w, e=e, mu0=mu0, gamma0=gamma0, gamma1=gamma1, cost=cost,
+                   site=u["site"].to_numpy(dtype=object)[g], halves=_halves(int(g.sum()), n_boot, seed),
+                   design=design, n_boot=n_boot, seed=seed)
 
     @property
     def gamma(self) -> np.ndarray:
@@ -103,6 +108,7 @@ def grade_submissions(
     *,
     rank_by: str = "autoc",
     reveal: bool = False,
+    withhold_answers: bool = True,
     n_boot: int = 200,
     seed: int | None = None,
     public_data: Path | str | None = None,
@@ -111,37 +117,43 @@ def grade_submissions(
 
     The public data file (``public_data``, default ``key/../public/data.csv``) is checked against the sealed
     SHA-256 when present. ``seed`` (default: the key's) fixes the half-samples, so grading is reproducible and
-    every submission is scored on the same draws. ``reveal`` adds per-site details (site labels, design
-    estimates by site, mean τ̂ by site); without it no output names a site.
+    every submission is scored on the same draws. A submission that cannot be graded is listed last with its
+    ``problem``. ``reveal`` adds per-site details (site labels, design estimates by site, mean τ̂ by site);
+    without it no output names a site. ``withhold_answers`` keeps the design-based values (design ATE, ATE
+    errors, CI coverage, per-site estimates) out of the written and printed leaderboard.
     """
     if rank_by not in METRICS:
         raise SiteproofError(f"unknown ranking metric {rank_by!r}", f"use one of {', '.join(METRICS)}")
-    if int(n_boot) < 2:
-        raise SiteproofError(f"n_boot is {n_boot}", "use at least 2 half-samples (default 200)")
+    if isinstance(n_boot, bool) or not isinstance(n_boot, int) or n_boot < 2:
+        raise SiteproofError(f"n_boot is {n_boot!r}", "use a whole number of at least 2 half-samples (default 200)")
     key = read_key(key_dir)
     check = public_check(key, public_data)
     seed = int(key.meta["seed"] if seed is None else seed)
     files = submission_files(submissions)
-    subs = [read_submission(path, key) for path in files]
-    _check_unique_names(subs)
-    grader = _Grader.from_key(key, int(n_boot), seed)
-    graded = [_grade(sub, grader, reveal, rank_by) for sub in subs]
-    entries = rank_entries(graded, rank_by)
+    grader = _Grader.from_key(key, n_boot, seed)
+    taken: dict[str, Path] = {}
+    graded = [_grade_file(path, key, grader, reveal, rank_by, taken) for path in files]
+    entries = rank_entries(graded, rank_by, show_gaps=not (withhold_answers and rank_by in ANSWER_METRICS))
     benchmark = {"name": key.meta["name"], "benchmark_id": key.benchmark_id, "n": key.meta["n"],
                  "n_graded": int(key.graded.sum()), "holdout_share": key.meta["holdout_share"]}
     sites = _site_details(key) if reveal else None
-    return Leaderboard(entries, rank_by, benchmark, grader.design, int(key.graded.sum()), int(n_boot), seed,
-                       check, reveal, sites)
+    return Leaderboard(entries, rank_by, benchmark, grader.design, int(key.graded.sum()), n_boot, seed,
+                       check, reveal, sites, withhold_answers=bool(withhold_answers))
 
 
-def _check_unique_names(subs: list[Submission]) -> None:
-    """Refuse two submissions with the same display name."""
-    seen: dict[str, Path] = {}
-    for sub in subs:
-        if sub.name in seen:
-            raise SiteproofError(f"two submissions are called {sub.name!r} ({seen[sub.name].name}, {sub.path.name})",
+def _grade_file(
+    path: Path, key: BenchmarkKey, grader: _Grader, reveal: bool, rank_by: str, taken: dict[str, Path],
+) -> GradedSubmission:
+    """One submission graded, or listed with the one-line reason it cannot be (``taken``: names so far)."""
+    try:
+        sub = read_submission(path, key)
+        if sub.name in taken:
+            raise SiteproofError(f"another submission ({taken[sub.name].name}) is also called {sub.name!r}",
                                  "give each a distinct file name or name = \"...\" in its TOML")
-        seen[sub.name] = sub.path
+        taken[sub.name] = path
+        return _grade(sub, grader, reveal, rank_by)
+    except SiteproofError as exc:
+        return GradedSubmission(path.stem, path.name, {}, None, None, None, problem=" ".join(str(exc).split()))
 
 
 def _grade(sub: Submission, grader: _Grader, reveal: bool, rank_by: str) -> GradedSubmission:
@@ -159,16 +171,22 @@ def _grade(sub: Submission, grader: _Grader, reveal: bool, rank_by: str) -> Grad
         treated_share = value.treated_share
     covers = None
     if sub.ate is not None:
-        d = grader.design
-        metrics["ate_error"] = Estimate.from_value("ate_error", sub.ate.estimate - d.estimate, d.se,
-                                                   estimand="submitted ATE − design ATE")
-        replicates["ate_error"] = sub.ate.estimate - grader.design_replicates
-        covers = bool(sub.ate.ci[0] <= d.estimate <= sub.ate.ci[1])
+        metrics["ate_error"], replicates["ate_error"] = _ate_error(sub.ate.estimate, tau, grader)
+        covers = bool(sub.ate.ci[0] <= grader.design.estimate <= sub.ate.ci[1])
     site_means = None
     if reveal and tau is not None:
         site_means = {str(k): float(v) for k, v in pd.Series(tau).groupby(grader.site).mean().items()}
     return GradedSubmission(sub.name, sub.path.name, metrics, treated_share, sub.ate, covers,
                             site_means=site_means, replicates=replicates)
+
+
+def _ate_error(ate: float, tau: np.ndarray | None, grader: _Grader) -> tuple[Estimate, np.ndarray]:
+    """â − Γ̄ from the paired per-unit differences d_i = â − Γ_i (+ τ̂_i − mean τ̂); SE sd(d)/√n."""
+    d = ate - grader.gamma
+    if tau is not None:
+        d = d + (tau - tau.mean())
+    error = Estimate.from_scores("ate_error", d, estimand="submitted ATE − design ATE of the graded units")
+    return error, _half_means(grader.halves, d)
 
 
 def _tau_metrics(

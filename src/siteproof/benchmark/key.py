@@ -2,7 +2,9 @@
 
 ``key/key.json`` holds everything about the benchmark except the per-unit table; ``key/units.csv`` holds, per
 token, the site, known rate, graded flag, outcome, treatment, cost and the cross-fitted outcome models μ̂₀, μ̂₁
-the grader needs; ``key/leak_audit.csv`` the audit table.
+the grader needs; ``key/leak_audit.csv`` the audit table; ``key/secret.txt`` the sealing secret. key.json
+carries the SHA-256 of the three files and a SHA-256 over its own canonical content
+(:mod:`siteproof.benchmark.keycheck`), so any change to the key is detected when it is read.
 """
 
 from __future__ import annotations
@@ -20,10 +22,12 @@ from sklearn.dummy import DummyClassifier, DummyRegressor
 from .. import __version__
 from ..blind.nuisance import cross_fit_nuisances, make_folds
 from ..core.errors import SiteproofError
-from ..core.outputs import atomic_write_json, atomic_write_text, json_records
+from ..core.outputs import atomic_write_bytes, atomic_write_text, json_records, to_json_text
 from ..intake.sitetrials import DesignATE
 from ..intake.study import Study, StudySpec
-from .layout import FORMAT_VERSION, KEY_AUDIT, KEY_FILE, KEY_SCHEMA, KEY_UNITS, PART, PUBLIC_DATA, TOKEN
+from .keycheck import check_key_fields, check_units, content_sha256, verify_integrity
+from .layout import (FORMAT_VERSION, KEY_AUDIT, KEY_FILE, KEY_SCHEMA, KEY_SECRET, KEY_UNITS, PART, PUBLIC_DATA,
+                     TOKEN)
 from .leakaudit import LeakAudit
 
 
@@ -32,20 +36,25 @@ def fit_key_units(
 ) -> tuple[pd.DataFrame, dict[str, Any]]:
     """Per token: row key, site, stratum, known rate, graded flag, y, w, cost and cross-fitted μ̂₀, μ̂₁.
 
-    The grader needs only μ̂₀ and μ̂₁ (the rates are known), so ê and m̂ are fitted by constant models.
+    The grader needs only μ̂₀ and μ̂₁ (the rates are known), so ê and m̂ are fitted by constant models. The
+    models are fitted on the units in source order, so they depend on the seed only and not on the sealing
+    secret that shuffled ``units``.
     """
     blind = study.blind
     y, w = blind.y[units], blind.w[units]
-    fold_ids = make_folds(w, folds, study.spec.seed)
+    source = np.argsort(units, kind="stable")  # the shuffled units back in source order
     unused = DummyClassifier(strategy="prior") if blind.binary_outcome else DummyRegressor()
     only_arms = {**dict(learners or {}), "propensity": DummyClassifier(strategy="prior"), "m": unused}
-    nuis = cross_fit_nuisances(blind.X[units], y, w, fold_ids, binary_outcome=blind.binary_outcome,
+    nuis = cross_fit_nuisances(blind.X[units[source]], y[source], w[source],
+                               make_folds(w[source], folds, study.spec.seed), binary_outcome=blind.binary_outcome,
                                learners=only_arms, seed=study.spec.seed)
+    mu0, mu1 = np.empty(units.size), np.empty(units.size)
+    mu0[source], mu1[source] = nuis.mu0, nuis.mu1
     frame = pd.DataFrame({
         TOKEN: tokens, "row_key": blind.row_key[units], "site": study.site[units],
         "stratum": study.stratum[units] if study.stratum is not None else None,
         "rate": study.known_rate[units], "graded": graded.astype(int), "y": y, "w": w.astype(int),
-        "cost": blind.cost[units] if blind.cost is not None else np.nan, "mu0": nuis.mu0, "mu1": nuis.mu1,
+        "cost": blind.cost[units] if blind.cost is not None else np.nan, "mu0": mu0, "mu1": mu1,
     })
     return frame, nuis.to_dict()
 
@@ -85,11 +94,19 @@ def _column_type(values: pd.Series) -> str:
     return "number" if numeric else "text"
 
 
-def write_key(folder: Path, meta: dict[str, Any], units: pd.DataFrame, audit: LeakAudit) -> None:
-    """Write key.json, units.csv and leak_audit.csv into ``folder`` (one file each, atomically)."""
-    atomic_write_json(folder / KEY_FILE, meta)
-    atomic_write_text(folder / KEY_UNITS, units.to_csv(index=False, lineterminator="\n"))
-    atomic_write_text(folder / KEY_AUDIT, audit.to_frame().to_csv(index=False, lineterminator="\n"))
+def write_key(folder: Path, meta: dict[str, Any], units: pd.DataFrame, audit: LeakAudit, secret: str) -> None:
+    """Write units.csv, leak_audit.csv, secret.txt and key.json (their SHA-256 and its own) into ``folder``."""
+    files = {
+        KEY_UNITS: units.to_csv(index=False, lineterminator="\n").encode("utf-8"),
+        KEY_AUDIT: audit.to_frame().to_csv(index=False, lineterminator="\n").encode("utf-8"),
+        KEY_SECRET: (secret + "\n").encode("utf-8"),
+    }
+    sealed = json.loads(to_json_text({**meta, "files": {name: hashlib.sha256(data).hexdigest()
+                                                         for name, data in files.items()}}))
+    sealed["key_sha256"] = content_sha256(sealed)
+    for name, data in files.items():
+        atomic_write_bytes(folder / name, data)
+    atomic_write_text(folder / KEY_FILE, to_json_text(sealed))
 
 
 @dataclass(frozen=True, eq=False)
@@ -117,7 +134,11 @@ class BenchmarkKey:
 
 
 def read_key(key_dir: Path | str) -> BenchmarkKey:
-    """Read ``BENCH/key``; a folder that is not a benchmark key raises :class:`SiteproofError`."""
+    """Read ``BENCH/key``: every field checked, then every file against the SHA-256 sealed in key.json.
+
+    A folder that is not a benchmark key, a field of the wrong kind, or a key changed after sealing raises one
+    :class:`SiteproofError` naming the key file.
+    """
     path = Path(key_dir)
     meta_path, units_path = path / KEY_FILE, path / KEY_UNITS
     if not meta_path.is_file() or not units_path.is_file():
@@ -126,15 +147,19 @@ def read_key(key_dir: Path | str) -> BenchmarkKey:
     try:
         meta = json.loads(meta_path.read_text(encoding="utf-8"))
     except (ValueError, OSError) as exc:
-        raise SiteproofError(f"cannot read {meta_path} ({exc})", "restore the key from the sealed copy") from None
-    if meta.get("schema") != KEY_SCHEMA or meta.get("version") != FORMAT_VERSION:
+        raise SiteproofError(f"cannot read benchmark key {meta_path} ({' '.join(str(exc).split())})",
+                             "restore the key from the sealed copy") from None
+    if not isinstance(meta, dict) or meta.get("schema") != KEY_SCHEMA or meta.get("version") != FORMAT_VERSION:
         raise SiteproofError(f"{meta_path} is not a version-{FORMAT_VERSION} benchmark key",
                              "seal the benchmark again with this version of siteproof")
-    units = pd.read_csv(units_path, dtype={TOKEN: str, "row_key": str, "site": str, "stratum": str},
-                        keep_default_na=False, na_values=[""])
-    if len(units) != meta["n"]:
-        raise SiteproofError(f"{units_path} has {len(units)} rows but the key says {meta['n']}",
-                             "restore the key from the sealed copy")
+    check_key_fields(meta, meta_path)
+    try:
+        raw = pd.read_csv(units_path, dtype=str, keep_default_na=False)
+    except (ValueError, OSError, UnicodeDecodeError) as exc:
+        raise SiteproofError(f"cannot read benchmark key {units_path} ({' '.join(str(exc).split())})",
+                             "restore the key from the sealed copy") from None
+    units = check_units(raw, meta, units_path)
+    verify_integrity(meta, path)
     return BenchmarkKey(path, meta, units)
 
 

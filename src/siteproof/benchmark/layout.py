@@ -13,7 +13,7 @@ from ..core.errors import SiteproofError
 
 KEY_SCHEMA = "siteproof/holdout-key"
 LEADERBOARD_SCHEMA = "siteproof/leaderboard"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 TOKEN = "token"
 PART = "part"
 PUBLIC_DATA = "data.csv"
@@ -23,6 +23,11 @@ TEMPLATE_TOML = "submission_template.toml"
 KEY_FILE = "key.json"
 KEY_UNITS = "units.csv"
 KEY_AUDIT = "leak_audit.csv"
+KEY_SECRET = "secret.txt"
+KEY_UNIT_COLUMNS = ("token", "row_key", "site", "stratum", "rate", "graded", "y", "w", "cost", "mu0", "mu1")
+KEY_FILES = (KEY_UNITS, KEY_AUDIT, KEY_SECRET)  # covered by the SHA-256 list in key.json
+DEFAULT_HOLDOUT_SHARE = 0.3
+SPREADSHEET_TRIGGERS = ("=", "+", "-", "@", "\t", "\r")
 LEADERBOARD_FILES = ("leaderboard.csv", "leaderboard.json", "leaderboard.html", "sites.csv")
 
 
@@ -32,3 +37,11 @@ def refuse_earlier(out: Path, names: Sequence[str], holds: str, force: bool) -> 
     if earlier and not force:
         raise SiteproofError(f"output folder {out} already holds {holds} ({', '.join(earlier)})",
                              "choose another --out folder or add --force to overwrite it")
+
+
+def spreadsheet_safe(text: str) -> str:
+    """A text cell a spreadsheet will not run as a formula: a leading = + - @ tab or CR gets a ' in front.
+
+    Common practice against CSV formula injection (the OWASP "CSV Injection" guidance).
+    """
+    return "'" + text if text.startswith(SPREADSHEET_TRIGGERS) else text

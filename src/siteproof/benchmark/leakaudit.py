@@ -22,8 +22,12 @@ site. The audit asks, for every column on its own, how well the site can be pred
 * **site labels as values or names.** A text cell that holds a site label as a whole word (case-insensitive)
   leaks that row's site whatever the accuracy says; a column named after a site (a site dummy) is flagged too.
   Labels that are numbers are not searched for: numbers recur in any numeric column.
-* **row order.** A tree on the row number; the public file is always shuffled, so this row is reported and
-  never stops sealing.
+* **row order.** A tree on the row number, flagged by the same rule. The public file is shuffled with a secret
+  drawn from the operating system, so a site-sorted source does not reach the students; sealing still stops
+  until the teacher confirms (``accept_row_order``), since anything else that carries the source order (a row
+  number, a timestamp) would carry the site with it.
+* **the sealed public file.** After sealing, the published token and part columns and the public row order are
+  audited again against the sites (:func:`audit_public`); a flag there stops sealing outright.
 
 A column is flagged when, in any of its views, ℓ ≥ 0.5 or a site is singled out, or when its values or its name
 hold site labels. Sealing stops on a flagged column unless it is acknowledged (kept) or dropped.
@@ -32,7 +36,7 @@ hold site labels. Sealing stops on a flagged column unless it is acknowledged (k
 from __future__ import annotations
 
 import re
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from typing import Any, Iterable, Sequence
 
 import numpy as np
@@ -130,12 +134,13 @@ def audit_columns(
     keep: Iterable[str] = (),
     drop: Iterable[str] = (),
     seed: int = 0,
+    accept_row_order: bool = False,
 ) -> LeakAudit:
     """Audit ``columns`` of ``frame`` (and its row order) for how well each predicts ``frame[site]``.
 
     ``keep`` lists acknowledged columns (published even when flagged), ``drop`` the columns left out of the
-    public file; both are audited all the same so that the saved table explains every decision. Rows with a
-    missing site are ignored.
+    public file; both are audited all the same so that the saved table explains every decision. A row order
+    that predicts the site is unresolved unless ``accept_row_order``. Rows with a missing site are ignored.
     """
     keep, drop = set(keep), set(drop)
     _check_names(frame, site, columns, keep, drop)
@@ -151,22 +156,47 @@ def audit_columns(
         _audit_column(rows[col], col, site_codes, folds, majority, label_pattern, seed, _decision(col, keep, drop))
         for col in columns
     ]
-    audited.append(_audit_row_order(site_codes, folds, majority, seed))
+    audited.append(_audit_row_order("(row order)", site_codes, folds, majority, seed, accept_row_order))
     return LeakAudit(audited, len(rows), len(site_names), majority, AUDIT_FOLDS, seed)
 
 
+def audit_public(public: pd.DataFrame, sites: np.ndarray, columns: Sequence[str], seed: int) -> list[AuditRow]:
+    """Audit ``columns`` of the sealed public file and its row order against each row's (key-side) site.
+
+    Nothing here may be flagged: the tokens, the train/test split and the order all come from the sealing
+    secret. Returned rows are named "COLUMN (public file)" and "(public row order)".
+    """
+    site_codes, _ = pd.factorize(np.asarray(sites, dtype=str), sort=True)
+    folds = _folds(site_codes.size, seed)
+    majority = float(np.bincount(site_codes).max() / site_codes.size)
+    rows = [replace(_audit_column(public[col].reset_index(drop=True), col, site_codes, folds, majority, None, seed,
+                                  "unresolved"), column=f"{col} (public file)")
+            for col in columns]
+    rows.append(_audit_row_order("(public row order)", site_codes, folds, majority, seed, accepted=False))
+    return rows
+
+
 def require_no_leaks(audit: LeakAudit) -> None:
-    """Raise one :class:`SiteproofError` naming every flagged column that was neither kept nor dropped."""
+    """Raise one :class:`SiteproofError` naming every flagged column (or row order) that was not resolved."""
     bad = audit.unresolved
     if not bad:
         return
+    public = [row for row in bad if row.column.endswith("(public file)") or row.column == "(public row order)"]
+    if public:
+        raise SiteproofError(
+            "leak audit of the sealed public file: " + "; ".join(f"{r.column} ({r.reason})" for r in public),
+            "seal again (a new secret draws a new order and new tokens); if this repeats, report it as a bug",
+        )
+    columns = [row for row in bad if row.kind != "row order"]
     parts = "; ".join(f"{row.column} ({row.reason})" for row in bad)
-    raise SiteproofError(
-        f"leak audit: {len(bad)} column{'s' if len(bad) > 1 else ''} give{'' if len(bad) > 1 else 's'} the site away: "
-        f"{parts}",
-        "drop each with --drop-column COL, or acknowledge a legitimate covariate (e.g. a region) with "
-        "--keep-column COL",
-    )
+    fixes = []
+    if columns:
+        fixes.append("drop each column with --drop-column COL, or acknowledge a legitimate covariate (e.g. a "
+                     "region) with --keep-column COL")
+    if len(columns) < len(bad):
+        fixes.append("the source file's row order is never published (the public rows are shuffled with a "
+                     "secret), so confirm it with --accept-row-order, or shuffle the source file")
+    raise SiteproofError(f"leak audit: the site is given away by {parts}", "; ".join(fixes))
 
 
 # ───────────────────────────── one column ─────────────────────────────
@@ -194,14 +224,21 @@ def _audit_column(
     )
 
 
-def _audit_row_order(site_codes: np.ndarray, folds: np.ndarray, majority: float, seed: int) -> AuditRow:
-    order = ("row order", np.arange(site_codes.size, dtype=float))
-    result = _predict_view(*order, site_codes, folds, majority, seed)
+def _audit_row_order(
+    name: str, site_codes: np.ndarray, folds: np.ndarray, majority: float, seed: int, accepted: bool,
+) -> AuditRow:
+    """The row number as a feature; flagged like a column. Decision: unresolved unless ``accepted``."""
+    result = _predict_view("row number", np.arange(site_codes.size, dtype=float), site_codes, folds, majority, seed)
+    flagged = result.flagged
+    if not flagged:
+        decision = "rows shuffled in the public file"
+    else:
+        decision = "accepted (public rows shuffled with a secret)" if accepted else "unresolved"
     return AuditRow(
-        column="(row order)", kind="row order", identifier_like=False, view="row number",
+        column=name, kind="row order", identifier_like=False, view="row number",
         accuracy=result.accuracy, majority_share=majority, lift=result.lift, sites_singled_out=result.singled_out,
-        rows_with_site_labels=0, name_has_site_label=False, flagged=False, reason="",
-        decision="rows shuffled in the public file",
+        rows_with_site_labels=0, name_has_site_label=False, flagged=flagged,
+        reason=_reason(result, majority, 0, False) if flagged else "", decision=decision,
     )
 
 

@@ -1,13 +1,20 @@
 """Sealing a holdout benchmark: a multi-site trial becomes a public exam and a sealed key.
 
 The raw table is first put through the leak audit (:mod:`siteproof.benchmark.leakaudit`); a flagged column
-stops sealing unless it is kept (acknowledged) or dropped. The usable units of the cells that have a
-design-based truth (≥ 2 units in each arm) are shuffled and given random tokens. ``public/`` gets the data
-without site, stratum or id (outcome, treatment as 0/1, the covariates as they were, the cost), a task sheet
-and submission templates; ``key/`` gets token → site and known rate, the outcome models the grader needs, the
-design-based truths, the audit table, the SHA-256 of the public data file and the seed. With ``holdout_share``
-> 0 a random share of the units has its outcome and treatment left blank in the public file; only those units
-are graded, so no prediction can lean on the graded unit's own outcome.
+stops sealing unless it is kept (acknowledged) or dropped, and a row order that predicts the site stops it until
+the teacher confirms it. The usable units of the cells that have a design-based truth (≥ 2 units in each arm)
+are shuffled, given random tokens and split into published (``train``) and held-out (``test``) units. These
+three draws come from a 256-bit **sealing secret** taken from the operating system's secure randomness
+(:mod:`secrets`), kept only in ``key/secret.txt``: nothing a student holds (the public file, the source code,
+the seed) lets them be regenerated, so the public row order and the tokens say nothing about the source file's
+order. The seed drives every statistical step (audit folds, key-side outcome models, grading half-samples).
+
+``public/`` gets the data without site, stratum or id (outcome, treatment as 0/1, the covariates as they were,
+the cost) with the outcome and treatment of the held-out units left blank, a task sheet and submission
+templates; ``key/`` gets token → site and known rate, the outcome models the grader needs, the design-based
+truths, the audit table, the SHA-256 of the public data file, the seed and the secret, all under a SHA-256 of
+the key's own content. By default 30 % of the units are held out and only they are graded, so no prediction can
+lean on a graded unit's own outcome; ``holdout_share=0`` grades every (published) unit in-sample.
 
 Nothing that names a site (site, stratum, id, known rate) goes into ``public/``.
 """
@@ -15,7 +22,9 @@ Nothing that names a site (site, stratum, id, known rate) goes into ``public/``.
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+import re
+import secrets
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -28,14 +37,17 @@ from ..core.outputs import StagedOutput, atomic_write_bytes, atomic_write_text
 from ..intake.sitetrials import DesignATE, design_ate
 from ..intake.study import Study, StudySpec, load_study, read_table
 from .key import fit_key_units, key_metadata, write_key
-from .layout import PART, PUBLIC_DATA, TASK_SHEET, TEMPLATE_CSV, TEMPLATE_TOML, TOKEN, refuse_earlier
-from .leakaudit import LeakAudit, audit_columns, require_no_leaks
+from .layout import (DEFAULT_HOLDOUT_SHARE, PART, PUBLIC_DATA, TASK_SHEET, TEMPLATE_CSV, TEMPLATE_TOML, TOKEN,
+                     refuse_earlier)
+from .leakaudit import LeakAudit, audit_columns, audit_public, require_no_leaks
 from .tasksheet import task_sheet, template_csv, template_toml
 
 _TOKEN_ALPHABET = np.array(list("abcdefghjkmnpqrstuvwxyz23456789"))
 _TOKEN_FIRST = np.array(list("abcdfghjkmnpqrstuvwxyz"))  # a letter other than e: never read as a number
 _TOKEN_LENGTH = 10
 _MIN_GRADED = 20
+SECRET_BITS = 256
+_SECRET_PATTERN = re.compile(r"^[0-9a-f]{64}$")
 
 
 @dataclass(frozen=True)
@@ -72,7 +84,9 @@ def seal_benchmark(
     spec: StudySpec,
     out_dir: Path | str,
     *,
-    holdout_share: float = 0.0,
+    holdout_share: float = DEFAULT_HOLDOUT_SHARE,
+    secret_file: Path | str | None = None,
+    accept_row_order: bool = False,
     folds: int = 5,
     learners: Any = None,
     force: bool = False,
@@ -80,24 +94,29 @@ def seal_benchmark(
     """Audit, then write ``out_dir/public/`` (exam) and ``out_dir/key/`` (sealed key); see the module docstring.
 
     ``spec.keep_columns`` acknowledges flagged columns, ``spec.drop_columns`` and ``spec.site_derived`` leave
-    columns out; ``spec.seed`` drives every random step (audit folds, shuffle, tokens, holdout split, outcome
-    models), so the same seed writes byte-identical files. ``learners`` is passed to
-    :func:`~siteproof.blind.nuisance.cross_fit_nuisances` for the key-side outcome models.
+    columns out; ``accept_row_order`` confirms a source row order that predicts the site. ``spec.seed`` drives
+    the statistical steps (audit folds, outcome models); the shuffle, tokens and holdout split come from a fresh
+    secret, or from ``secret_file`` (e.g. an earlier ``key/secret.txt``), which reproduces that seal byte for
+    byte. ``learners`` is passed to :func:`~siteproof.blind.nuisance.cross_fit_nuisances` for the key-side
+    outcome models.
     """
     _check_holdout_share(holdout_share)
+    secret = read_secret(secret_file) if secret_file is not None else secrets.token_hex(SECRET_BITS // 8)
     out = Path(out_dir)
     _check_bench_dir(out, force)
     frame = read_table(spec.data, spec.encoding)
-    audit = _audit(frame, spec)
+    audit = _audit(frame, spec, accept_row_order)
     require_no_leaks(audit)
     study = load_study(spec, frame=frame)
     units, design, notes = _benchmark_units(study)
-    rng = np.random.default_rng(spec.seed)
-    order = rng.permutation(units.size)
-    units = units[order]
+    rng = np.random.default_rng(int(secret, 16))  # the secret, never the seed: see the module docstring
+    units = units[rng.permutation(units.size)]
     tokens = _tokens(rng, units.size)
     graded = _holdout_mask(rng, units.size, holdout_share)
     public = _public_frame(study, units, tokens, graded, holdout_share > 0)
+    audit = replace(audit, rows=audit.rows + audit_public(
+        public, study.site[units], [TOKEN] + ([PART] if holdout_share > 0 else []), spec.seed))
+    require_no_leaks(audit)
     public_bytes = public.to_csv(index=False, lineterminator="\n").encode("utf-8")
     sha = hashlib.sha256(public_bytes).hexdigest()
     key_units, nuisance_summary = fit_key_units(study, units, tokens, graded, folds, learners)
@@ -107,7 +126,7 @@ def seal_benchmark(
         atomic_write_text(staged / "public" / TASK_SHEET, task_sheet(meta))
         atomic_write_text(staged / "public" / TEMPLATE_CSV, template_csv(tokens))
         atomic_write_text(staged / "public" / TEMPLATE_TOML, template_toml(meta))
-        write_key(staged / "key", meta, key_units, audit)
+        write_key(staged / "key", meta, key_units, audit, secret)
     return SealResult(
         out_dir=out, public_sha256=sha, n=int(units.size), n_graded=int(graded.sum()), seed=int(spec.seed),
         holdout_share=float(holdout_share), audit=audit, design_ate=design.estimate,
@@ -115,11 +134,26 @@ def seal_benchmark(
     )
 
 
+def read_secret(path: Path | str) -> str:
+    """The sealing secret (64 lower-case hex digits, 256 bits) from a text file such as ``key/secret.txt``."""
+    source = Path(path)
+    try:
+        text = source.read_text(encoding="utf-8").strip()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SiteproofError(f"cannot read the secret file {source} ({exc})",
+                             "give the key/secret.txt of the seal to reproduce") from None
+    if not _SECRET_PATTERN.match(text):
+        raise SiteproofError(f"secret file {source} does not hold a sealing secret (64 hex digits)",
+                             "give the key/secret.txt written by `siteproof seal`, unchanged")
+    return text
+
+
 def _check_holdout_share(share: float) -> None:
     """Refuse a holdout share outside [0, 1)."""
-    if not (isinstance(share, (int, float)) and 0.0 <= share < 1.0):
+    if isinstance(share, bool) or not (isinstance(share, (int, float)) and 0.0 <= share < 1.0):
         raise SiteproofError(f"the holdout share is {share!r}",
-                             "give a share in [0, 1), e.g. 0.3 (0 grades every unit)")
+                             f"give a share in [0, 1) (default {DEFAULT_HOLDOUT_SHARE}; 0 grades every unit "
+                             "in-sample)")
 
 
 def _check_bench_dir(out: Path, force: bool) -> None:
@@ -129,7 +163,7 @@ def _check_bench_dir(out: Path, force: bool) -> None:
     refuse_earlier(out, ("public", "key"), "a benchmark", force)
 
 
-def _audit(frame: pd.DataFrame, spec: StudySpec) -> LeakAudit:
+def _audit(frame: pd.DataFrame, spec: StudySpec, accept_row_order: bool) -> LeakAudit:
     """Leak audit of every column the public file could hold: covariates (declared or all others) and cost."""
     roles = {spec.outcome, spec.treatment, spec.site, spec.id, spec.stratum, spec.cost} - {None}
     drop = list(spec.drop_columns) + list(spec.site_derived)
@@ -143,7 +177,8 @@ def _audit(frame: pd.DataFrame, spec: StudySpec) -> LeakAudit:
     missing = [c for c in columns if c not in frame.columns]
     if missing:
         raise SiteproofError(f"column {missing[0]!r} is not in the data", f"name one of: {', '.join(frame.columns)}")
-    return audit_columns(frame, spec.site, columns, keep=spec.keep_columns, drop=drop, seed=spec.seed)
+    return audit_columns(frame, spec.site, columns, keep=spec.keep_columns, drop=drop, seed=spec.seed,
+                         accept_row_order=accept_row_order)
 
 
 def _benchmark_units(study: Study) -> tuple[np.ndarray, DesignATE, list[str]]:
@@ -156,6 +191,10 @@ def _benchmark_units(study: Study) -> tuple[np.ndarray, DesignATE, list[str]]:
         notes.append(f"{left} units of cells with fewer than 2 units in an arm have no design-based truth and are "
                      "left out of the benchmark")
         warn(notes[-1])
+    n_sites = pd.unique(study.site[units]).size
+    if n_sites < 2:
+        raise SiteproofError(f"the benchmark units come from {n_sites} site only",
+                             "a site-hidden benchmark needs at least 2 sites with units in both arms")
     if units.size < _MIN_GRADED:
         raise SiteproofError(f"only {units.size} units have a design-based truth",
                              f"a benchmark needs at least {_MIN_GRADED}; check the site and treatment columns")

@@ -6,6 +6,12 @@ same n_boot half-samples for every submission (``evaluation.half_samples``), and
 of the replicate differences (never add two variances of estimates made on the same units). When
 the difference is within 1.96 SEs the submission joins the group (same rank, ``tied_with`` names the group's
 best); otherwise it opens a new group with its own position as rank (competition ranking: 1, 1, 3).
+Submissions without the ranking metric follow, unranked, and then the ones that could not be graded, each with
+its ``problem``.
+
+The design-based answers (:data:`ANSWER_METRICS`, the design ATE and the CI coverage) are kept in memory for the
+teacher and left out of every output when the leaderboard withholds them: knowing one's own submitted ATE, the
+ATE error would give the design ATE back.
 """
 
 from __future__ import annotations
@@ -46,6 +52,10 @@ METRICS: dict[str, MetricInfo] = {
 }
 
 
+ANSWER_METRICS = ("ate_error",)  # submitted value minus the design-based answer: withheld with the answers
+IN_SAMPLE = "published units (in-sample)"
+HELD_OUT = "held-out units"
+
 TIE_RULE = ("a submission is tied with the best submission of its group when their paired difference in the "
             "ranking metric is within 1.96 standard errors (SD of the difference over shared half-samples); tied "
             "submissions share the group's rank")
@@ -74,18 +84,24 @@ class GradedSubmission:
     standing: str = ""
     site_means: dict[str, float] | None = None
     replicates: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+    problem: str | None = None
 
     def value(self, metric: str) -> float:
         """The estimate of ``metric``; NaN when the submission has no such metric."""
         est = self.metrics.get(metric)
         return float("nan") if est is None else float(est.estimate)
 
-    def to_dict(self) -> dict[str, Any]:
-        """One entry of leaderboard.json (per-site means only with reveal)."""
+    def to_dict(self, withhold_answers: bool = False) -> dict[str, Any]:
+        """One entry of leaderboard.json (per-site means only with reveal; answers left out when withheld)."""
+        metrics = {k: v.to_dict() for k, v in self.metrics.items()}
+        for key in ANSWER_METRICS:
+            if withhold_answers and key in metrics:
+                metrics[key] = {"estimate": None, "se": metrics[key]["se"], "ci": None, "withheld": True}
         out: dict[str, Any] = {
             "submission": self.name, "file": self.file, "rank": self.rank, "tied_with": self.tied_with,
-            "standing": self.standing, "metrics": {k: v.to_dict() for k, v in self.metrics.items()},
-            "treated_share": self.treated_share, "ci_covers_design_ate": self.ci_covers,
+            "standing": self.standing, "problem": self.problem, "metrics": metrics,
+            "treated_share": self.treated_share,
+            "ci_covers_design_ate": None if withhold_answers else self.ci_covers,
             "submitted_ate": self.submitted_ate.to_dict() if self.submitted_ate else None,
         }
         if self.site_means is not None:
@@ -107,21 +123,42 @@ class Leaderboard:
     public_check: str
     reveal: bool
     sites: pd.DataFrame | None = None
+    withhold_answers: bool = True
+
+    @property
+    def graded_on(self) -> str:
+        """"held-out units", or "published units (in-sample)" when the benchmark holds no unit out."""
+        return HELD_OUT if self.benchmark["holdout_share"] > 0 else IN_SAMPLE
+
+    def withheld(self, metric: str) -> bool:
+        """True when the outputs leave the estimate of ``metric`` out (a design-based answer, withheld)."""
+        return self.withhold_answers and metric in ANSWER_METRICS
+
+    def shown_sites(self) -> pd.DataFrame | None:
+        """The per-site table (reveal only), without the design-based estimates when answers are withheld."""
+        if not self.reveal or self.sites is None:
+            return None
+        if self.withhold_answers:
+            return self.sites.drop(columns=["difference_in_means", "se"], errors="ignore")
+        return self.sites
 
     def to_frame(self) -> pd.DataFrame:
-        """leaderboard.csv: one row per submission, metrics with SEs; no site information."""
+        """leaderboard.csv: one row per submission, metrics with SEs, problem; no site information."""
         rows = []
         for entry in self.entries:
             row: dict[str, Any] = {"submission": entry.name, "rank": entry.rank, "tied_with": entry.tied_with or ""}
             for key in METRICS:
                 est = entry.metrics.get(key)
-                row[key] = est.estimate if est else np.nan
+                row[key] = est.estimate if est and not self.withheld(key) else np.nan
                 row[f"{key}_se"] = est.se if est else np.nan
             row["treated_share"] = entry.treated_share
             row["ate"] = entry.submitted_ate.estimate if entry.submitted_ate else np.nan
             row["ate_se"] = entry.submitted_ate.se if entry.submitted_ate else np.nan
-            row["ate_ci_covers"] = "" if entry.ci_covers is None else ("yes" if entry.ci_covers else "no")
+            covers = None if self.withhold_answers else entry.ci_covers
+            row["ate_ci_covers"] = "" if covers is None else ("yes" if covers else "no")
+            row["graded_on"] = self.graded_on if entry.problem is None else ""
             row["standing"] = entry.standing
+            row["problem"] = entry.problem or ""
             row["file"] = entry.file
             rows.append(row)
         frame = pd.DataFrame(rows)
@@ -129,17 +166,19 @@ class Leaderboard:
         return frame
 
     def to_dict(self) -> dict[str, Any]:
-        """leaderboard.json: settings, the design ATE and every submission; site records only with reveal."""
+        """leaderboard.json: settings, the design ATE (unless withheld) and every submission; sites with reveal."""
         out: dict[str, Any] = {
             "schema": LEADERBOARD_SCHEMA, "version": FORMAT_VERSION, "siteproof_version": __version__,
-            "benchmark": dict(self.benchmark), "public_check": self.public_check,
+            "benchmark": dict(self.benchmark), "public_check": self.public_check, "graded_on": self.graded_on,
             "settings": {"rank_by": self.rank_by, "n_boot": self.n_boot, "seed": self.seed, "reveal": self.reveal,
-                         "tie_rule": TIE_RULE},
-            "n_graded": self.n_graded, "design_ate": self.design_ate.to_dict(),
-            "submissions": [e.to_dict() for e in self.entries],
+                         "withhold_answers": self.withhold_answers, "tie_rule": TIE_RULE},
+            "n_graded": self.n_graded,
+            "design_ate": None if self.withhold_answers else self.design_ate.to_dict(),
+            "submissions": [e.to_dict(self.withhold_answers) for e in self.entries],
         }
-        if self.reveal and self.sites is not None:
-            out["sites"] = json_records(self.sites)
+        sites = self.shown_sites()
+        if sites is not None:
+            out["sites"] = json_records(sites)
         return out
 
 
@@ -163,14 +202,16 @@ def paired_difference(a: GradedSubmission, b: GradedSubmission, metric: str) -> 
     return diff, float(d.std(ddof=1)) if d.size > 1 else float("nan")
 
 
-def rank_entries(entries: Sequence[GradedSubmission], metric: str) -> list[GradedSubmission]:
+def rank_entries(entries: Sequence[GradedSubmission], metric: str, show_gaps: bool = True) -> list[GradedSubmission]:
     """Order by the ranking value (best first; name breaks exact ties), group ties, write standings in words.
 
-    Entries without the metric come last, unranked, with the reason.
+    Entries without the metric come next, unranked, with the reason; entries with a ``problem`` come last.
+    ``show_gaps=False`` leaves the numbers out of the standings (when they would give an answer away).
     """
     label = METRICS[metric].label
-    ranked = [e for e in entries if np.isfinite(_ranking_value(e, metric))]
-    unranked = [e for e in entries if not np.isfinite(_ranking_value(e, metric))]
+    valid = [e for e in entries if e.problem is None]
+    ranked = [e for e in valid if np.isfinite(_ranking_value(e, metric))]
+    unranked = [e for e in valid if not np.isfinite(_ranking_value(e, metric))]
     ranked.sort(key=lambda e: (-_ranking_value(e, metric), e.name))
     out: list[GradedSubmission] = []
     leader: GradedSubmission | None = None
@@ -181,15 +222,18 @@ def rank_entries(entries: Sequence[GradedSubmission], metric: str) -> list[Grade
             out.append(replace(entry, rank=position, standing=f"best by {label}"))
             continue
         diff, se = paired_difference(leader, entry, metric)
-        gap = f"{fmt(diff)} (SE {fmt(se)})"
+        gap = f" by {fmt(diff)} (SE {fmt(se)})" if show_gaps else ""
         if np.isfinite(se) and diff <= Z95 * se:
             out.append(replace(entry, rank=leader_rank, tied_with=leader.name,
-                               standing=f"tied with {leader.name}: behind by {gap}, within its uncertainty"))
+                               standing=f"tied with {leader.name}: behind{gap}, within its uncertainty"))
             continue
-        out.append(replace(entry, rank=position, standing=f"behind {leader.name} by {gap}"))
+        out.append(replace(entry, rank=position, standing=f"behind {leader.name}{gap}"
+                           + ("" if show_gaps else ", beyond its uncertainty")))
         leader, leader_rank = entry, position
     for entry in sorted(unranked, key=lambda e: e.name):
         out.append(replace(entry, standing=f"not ranked: {_missing_reason(entry, metric)}"))
+    for entry in [e for e in entries if e.problem is not None]:
+        out.append(replace(entry, standing="not graded (see problem)"))
     return out
 
 

@@ -27,7 +27,8 @@ else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
 _FOREIGN_SHARE = 0.5
-
+SUBMISSION_COLUMNS = (TOKEN, "tau_hat", "treat")
+_NAME_MAX = 60
 
 
 @dataclass(frozen=True)
@@ -77,7 +78,8 @@ def submission_files(paths: Iterable[Path | str]) -> list[Path]:
 def read_submission(path: Path | str, key: BenchmarkKey) -> Submission:
     """Read and validate one submission CSV (and its optional TOML beside it) against the key.
 
-    Checks: a ``token`` column; ``tau_hat`` and/or ``treat``; every token of the benchmark exactly once and no
+    Checks: a ``token`` column; ``tau_hat`` and/or ``treat`` and no other column (a misnamed prediction column
+    must not be ignored); every token of the benchmark exactly once and no
     other token (a file whose tokens mostly do not belong to the benchmark was made for another public file);
     finite ``tau_hat``; ``treat`` in {0, 1}. Every failure raises :class:`SiteproofError` naming the file.
     """
@@ -86,6 +88,13 @@ def read_submission(path: Path | str, key: BenchmarkKey) -> Submission:
     if TOKEN not in frame.columns:
         raise SiteproofError(f"submission {path.name} has no '{TOKEN}' column (columns: {', '.join(frame.columns)})",
                              f"start the file with the '{TOKEN}' column of {TEMPLATE_CSV}")
+    unknown = [c for c in frame.columns if c not in SUBMISSION_COLUMNS]
+    if unknown:
+        raise SiteproofError(
+            f"submission {path.name} has column{'s' if len(unknown) > 1 else ''} {_few(unknown)} that "
+            f"{'are' if len(unknown) > 1 else 'is'} not recognised",
+            f"name the columns {', '.join(SUBMISSION_COLUMNS)} exactly (tau_hat and treat may be left out), "
+            "and remove any other column")
     if "tau_hat" not in frame.columns and "treat" not in frame.columns:
         raise SiteproofError(f"submission {path.name} has neither a 'tau_hat' nor a 'treat' column",
                              "add tau_hat (predicted effects) and/or treat (0/1) as in the task sheet")
@@ -175,6 +184,9 @@ def _read_submission_toml(path: Path, key: BenchmarkKey) -> tuple[str, Submitted
         raise SiteproofError(f"{path.name} was made for benchmark {raw['benchmark']!r}, not {key.benchmark_id!r}",
                              "make the submission for this benchmark's data.csv")
     name = str(raw.get("name") or path.stem).strip() or path.stem
+    if len(name) > _NAME_MAX or any(not ch.isprintable() for ch in name):
+        raise SiteproofError(f"{path.name}: the name {name[:_NAME_MAX]!r} is longer than {_NAME_MAX} characters or "
+                             "holds control characters", "give a one-line name of printable characters")
     return name, _submitted_ate(raw["ate"], path.name) if "ate" in raw else None
 
 

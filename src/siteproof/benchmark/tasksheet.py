@@ -27,15 +27,21 @@ def task_sheet(meta: dict[str, Any]) -> str:
         rows.append(f"| `{c}` | covariate{f' ({missing} missing)' if missing else ''} | {cols['covariate_types'][c]} |")
     if cols["cost"]:
         rows.append(f"| `{cols['cost']}` | cost of treating this unit, in outcome units | number |")
-    honesty = (
-        f"The {meta['n_graded']} `test` units are graded; their outcome and treatment are hidden, so your "
-        "predictions for them can only use their covariates."
-        if holdout else
-        "Every unit is graded. A prediction for a unit must not use that unit's own outcome or treatment: fit your "
-        "models on the other units (cross-fitting: split the units into folds and predict each fold from models "
-        "trained on the others). In-sample predictions are graded as if they were honest and will look better "
-        "than they are."
-    )
+    if holdout:
+        honesty = (
+            f"Only the {meta['n_graded']} `test` units are graded. Their covariates are in the file but their "
+            "outcome and treatment are not: fit your models on the `train` units and predict `tau_hat` and "
+            "`treat` for every unit from its covariates (you may also use the `test` units' covariates, e.g. "
+            "to study who they are). Predictions for the `train` units are accepted but not graded."
+        )
+    else:
+        honesty = (
+            "Every unit is graded in-sample: its outcome is in the file. A prediction for a unit must not use "
+            "that unit's own outcome or treatment: fit your models on the other units (cross-fitting: split the "
+            "units into folds and predict each fold from models trained on the others). In-sample predictions "
+            "are graded as if they were honest and will look better than they are."
+        )
+    graded_units = f"the {meta['n_graded']} `test` units" if holdout else f"all {meta['n']} units"
     cost_note = f" minus `{cols['cost']}`" if cols["cost"] else ""
     return f"""# {meta['name']}: holdout benchmark
 
@@ -56,7 +62,8 @@ Empty cells are missing values.
 
 ## What to hand in
 
-1. **`<your name>.csv`**, one row per token — all {meta['n']} tokens, each exactly once — with the columns
+1. **`<your name>.csv`**, one row per token — all {meta['n']} tokens, each exactly once — with exactly the
+   columns (any other column is refused)
    * `{TOKEN}`;
    * `tau_hat`: your prediction of the unit's treatment effect (outcome if treated minus outcome if not
      treated, in outcome units), a finite number;
@@ -64,8 +71,8 @@ Empty cells are missing values.
 
    You may leave out `tau_hat` or `treat`; the metrics that need it are then not graded.
    `{TEMPLATE_CSV}` lists every token.
-2. Optionally **`<your name>.toml`** beside it, with your estimate of the average treatment effect over all
-   {meta['n']} units (`{TEMPLATE_TOML}` is a template):
+2. Optionally **`<your name>.toml`** beside it, with your estimate of the average treatment effect over
+   {graded_units} (`{TEMPLATE_TOML}` is a template):
 
    ```toml
    # optional: your name on the leaderboard (default: the file name)
@@ -91,7 +98,8 @@ computed from the randomization itself (design-based), so it is unbiased whateve
 * **BLP β₂**: how well `tau_hat` tracks the true differences in effects (1 = calibrated, 0 = no information);
 * **rule gain** of `treat`: the average outcome{cost_note} under your rule, compared with treating the same
   share of units at random;
-* **ATE error**: your average effect minus the design-based estimate, and whether your 95 % interval covers it.
+* **ATE error**: your average effect minus the design-based estimate over the graded units, and whether your
+  95 % interval covers it (your teacher may keep these values to themselves).
 
 Every metric is reported with its standard error. The leaderboard ranks by AUTOC unless your teacher announces
 another metric. Two submissions whose difference is within its uncertainty (95 %, paired over the same units)
