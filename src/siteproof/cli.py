@@ -354,6 +354,49 @@ def study(
                   f"{Path(out) / 'summary.html'}")
 
 
+@app.command()
+def confound(
+    data: Annotated[Path, typer.Argument(help="A randomized trial (any table format siteproof reads).")],
+    outcome: Annotated[str, typer.Option("--outcome", help="Outcome column.")],
+    treatment: Annotated[str, typer.Option("--treatment", help="Treatment column (exactly two values).")],
+    out: OutOpt,
+    covariates: Annotated[Optional[str], typer.Option("--covariates", help="Comma-separated covariates (default: every other column).")] = None,
+    strength: Annotated[Optional[float], typer.Option("--strength", help="Log-odds shift of the rate across cells (default 1; 0: no confounding).")] = None,
+    cells: Annotated[Optional[int], typer.Option("--cells", help="Number of cells K (default 4).")] = None,
+    by: Annotated[Optional[str], typer.Option("--by", help="Form cells from one or two covariates, e.g. age,educ (default: a prognostic score).")] = None,
+    rule: Annotated[Optional[Path], typer.Option("--rule", help="TOML rule file with the cells and their keep probabilities per arm.")] = None,
+    trial_rate: Annotated[Optional[float], typer.Option("--trial-rate", help="The trial's assignment probability (default: the realized treated share).")] = None,
+    treated_value: Annotated[Optional[str], typer.Option("--treated-value", help=_DATA_HELP["treated_value"])] = None,
+    encoding: Annotated[Optional[str], typer.Option("--encoding", help=_DATA_HELP["encoding"])] = None,
+    seed: Annotated[int, typer.Option("--seed", help="Seed of the cells' score folds and of the draw.")] = 0,
+    force: ForceOpt = False,
+) -> None:
+    """Draw a confounded subsample of a randomized trial with known per-cell rates → data.csv, study.toml, truth.json."""
+    from rich import box
+    from rich.table import Table
+
+    from .core.console import console
+    from .simulation.confound import confound_trial
+    from .simulation.confoundfiles import write_confounded
+
+    sample = confound_trial(
+        data, outcome, treatment, split_list(covariates), strength=strength, cells=cells, seed=seed, rule=rule,
+        treated_value=treated_value, by=split_list(by), trial_rate=trial_rate, encoding=encoding,
+    )
+    paths = write_confounded(sample, out, force=force)
+    truth, bias = sample.truth, sample.induced_bias()
+    table = Table("cell", "definition", "keep treated", "keep control", "rate", "trial", "kept", box=box.SIMPLE)
+    for row in sample.to_frame().itertuples():
+        table.add_row(row.cell, row.definition, f"{row.keep_treated:.3f}", f"{row.keep_control:.3f}",
+                      f"{row.rate:.3f}", f"{row.n_trial:,}", f"{row.n_kept:,}")
+    console.print(table)
+    console.print(f"kept {int(sample.kept.sum()):,} of {sample.kept.size:,} units in {len(sample.cells)} cells; "
+                  f"truth {truth.estimate:.4g} (SE {truth.se:.3g}); naive {sample.naive.estimate:.4g}, "
+                  f"design-based {sample.design.estimate.estimate:.4g} (SE {sample.design.estimate.se:.3g}); "
+                  f"induced bias {bias['realized']:.3g} (SE {bias['realized_se']:.3g})")
+    console.print(f"study: {paths['study']}   truth: {paths['truth']}")
+
+
 # ---------------------------------------------------------------------------------------------------------
 # entry point: one-line errors, exit 2, no traceback
 # ---------------------------------------------------------------------------------------------------------
