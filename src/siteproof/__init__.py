@@ -7,7 +7,8 @@ The public Python API mirrors the command line:
 * the blind analysis — :func:`run_blind` with a :class:`BlindConfig` → claims;
 * unmasking — :func:`run_unmask` → scorecard; :func:`run_pipeline` does intake + blind + unmask + report;
 * :func:`run_demo`, :func:`load_design` (and ``siteproof.simulation.simulate.simulate``), :func:`random_effects`, :func:`seal_benchmark`,
-  :func:`grade_submissions`, :func:`write_report`, :func:`run_study`.
+  :func:`grade_submissions`, :func:`write_report`, :func:`run_study`;
+* benchmarks from one randomized trial — :func:`confound_trial`, :func:`write_confounded`, :func:`confound_study`.
 
 Names are imported lazily so that ``import siteproof`` (and the command line) starts fast.
 """
@@ -39,6 +40,9 @@ _LAZY = {
     "grade_submissions": "benchmark.holdout",
     "write_report": "reporting.report",
     "run_study": "simulation.montecarlo",
+    "confound_trial": "simulation.confound",
+    "write_confounded": "simulation.confoundfiles",
+    "confound_study": "simulation.confoundstudy",
 }
 
 __all__ = ["SiteproofError", "SiteproofWarning", "__version__", *sorted(_LAZY)]
