@@ -397,6 +397,30 @@ def confound(
     console.print(f"study: {paths['study']}   truth: {paths['truth']}")
 
 
+@app.command()
+@with_data_flags
+def sets(
+    flags: DataFlags,
+    out: OutOpt,
+    set_: Annotated[Optional[list[str]], typer.Option("--set", help="A covariate set NAME=col1,col2 (repeatable).")] = None,
+    drop_each: Annotated[bool, typer.Option("--drop-each", help="Also run the full set and every leave-one-covariate-out set.")] = False,
+    sensitivity: Annotated[bool, typer.Option("--sensitivity", help="Add the omitted-variable-bias analysis of each set.")] = False,
+    folds: FoldsOpt = 5,
+    force: ForceOpt = False,
+) -> None:
+    """Blind AIPW under several covariate sets (same folds and seed), each scored against the design → sets.json."""
+    spec = spec_from_flags(flags, out)
+    from .blind.analysis import BlindConfig
+    from .core.console import console
+    from .covsets import SETS_FILE, SETS_PAGE, parse_set_flags, run_sets
+    from .reporting.sets_page import sets_table
+
+    result = run_sets(spec, parse_set_flags(set_ or []), out, BlindConfig(seed=spec.seed, folds=folds), drop_each=drop_each,
+                      margin=flags.margin, sensitivity=sensitivity, force=force)
+    console.print(sets_table(result.to_dict()))
+    console.print(f"\nsets: {out / SETS_FILE}   page: {out / SETS_PAGE}")
+
+
 # ---------------------------------------------------------------------------------------------------------
 # entry point: one-line errors, exit 2, no traceback
 # ---------------------------------------------------------------------------------------------------------
