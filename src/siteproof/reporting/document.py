@@ -38,35 +38,70 @@ class Verdict:
         return f"{self.word} ({self.note})" if self.note else self.word
 
 
+LONG_TABLE = 15    # a table with more rows than this is collapsed in HTML ...
+PREVIEW_ROWS = 10  # ... to its first rows, with a toggle showing all of them
+
+
 @dataclass
 class Table:
-    """A table whose headers carry units and whose footnotes explain every number."""
+    """A table whose headers carry units and whose footnotes explain every number.
+
+    In HTML the table scrolls sideways inside its own box when it is wider than the page; its first column
+    and its verdict column stay in view while it scrolls (sticky cells).  A table longer than
+    :data:`LONG_TABLE` rows shows its first ``preview`` rows (default :data:`PREVIEW_ROWS`; 0 = never
+    collapse) and a <details> toggle that shows all of them (plain HTML and CSS, no script; print and
+    Markdown always show every row)."""
 
     caption: str
     headers: list[str]
     rows: list[list[Any]]
     notes: list[str] = field(default_factory=list)
     text: tuple[int, ...] = (0,)
+    preview: int | None = None
 
     def text_columns(self) -> set[int]:
         """Left-aligned columns: the declared text columns and every column holding a verdict."""
-        return set(self.text) | {j for row in self.rows for j, cell in enumerate(row) if isinstance(cell, Verdict)}
+        return set(self.text) | self.verdict_columns()
+
+    def verdict_columns(self) -> set[int]:
+        """Columns holding a verdict word."""
+        return {j for row in self.rows for j, cell in enumerate(row) if isinstance(cell, Verdict)}
+
+    def shown_rows(self) -> int:
+        """How many rows the collapsed HTML table shows (all of them when it is not collapsed)."""
+        preview = PREVIEW_ROWS if self.preview is None else self.preview
+        return preview if 0 < preview < len(self.rows) and len(self.rows) > LONG_TABLE else len(self.rows)
+
+    def _cell_classes(self, j: int, text: set[int], pinned: int | None) -> str:
+        names = ["text"] if j in text else []
+        if j == 0:
+            names.append("pin-start")
+        elif j == pinned:
+            names.append("pin-end")
+        return f' class="{" ".join(names)}"' if names else ""
 
     def html(self) -> str:
         text = self.text_columns()
-        head = "".join(f'<th class="text">{_esc(h)}</th>' if j in text else f"<th>{_esc(h)}</th>"
-                       for j, h in enumerate(self.headers))
+        verdicts = self.verdict_columns()
+        pinned = max(verdicts) if verdicts else None
+        head = "".join(f"<th{self._cell_classes(j, text, pinned)}>{_esc(h)}</th>" for j, h in enumerate(self.headers))
+        shown = self.shown_rows()
         body = []
-        for row in self.rows:
+        for i, row in enumerate(self.rows):
             cells = []
             for j, cell in enumerate(row):
                 content = cell.html() if isinstance(cell, Verdict) else _esc(cell)
-                cls = ' class="text"' if j in text else ""
-                cells.append(f"<td{cls}>{content}</td>")
-            body.append("<tr>" + "".join(cells) + "</tr>")
+                cells.append(f"<td{self._cell_classes(j, text, pinned)}>{content}</td>")
+            more = ' class="more"' if i >= shown else ""
+            body.append(f"<tr{more}>" + "".join(cells) + "</tr>")
         notes = "".join(f'<p class="footnote">{_esc(n)}</p>' for n in self.notes)
+        toggle = ""
+        if shown < len(self.rows):
+            toggle = (f'<details class="more"><summary><span class="closed">Show all {len(self.rows)} rows '
+                      f'({shown} shown)</span><span class="opened">Show the first {shown} rows only</span>'
+                      "</summary></details>")
         return (f'<div class="table"><div class="scroll"><table><caption>{_esc(self.caption)}</caption>'
-                f'<thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table></div>{notes}</div>')
+                f'<thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table></div>{toggle}{notes}</div>')
 
     def markdown(self) -> str:
         def cell(value: Any) -> str:
@@ -188,7 +223,8 @@ class Section:
     def html(self, number: int) -> str:
         reading = "<br>".join(_esc(line) for line in self.reading)
         body = "\n".join(p.html() for p in self.parts)
-        return (f'<section class="part" id="{self.key}"><h2><span class="num">{number}</span>{_esc(self.title)}</h2>\n'
+        return (f'<section class="part" id="{self.key}"><h2><span class="num">{number}</span>{_esc(self.title)}'
+                f'<a class="to-top" href="#top" title="back to the top">↑ top</a></h2>\n'
                 f'<p class="reading">{reading}</p>\n{body}\n</section>')
 
     def markdown(self, number: int) -> str:
@@ -213,16 +249,17 @@ class Document:
     def html(self) -> str:
         nav = "".join(f'<a href="#{s.key}">{i}. {_esc(s.title)}</a>' for i, s in enumerate(self.sections, 1))
         body = "\n".join(s.html(i) for i, s in enumerate(self.sections, 1))
-        return theme.page_head(self.title) + f"""<header class="masthead">
+        return theme.page_head(self.title) + f"""<header class="masthead" id="top">
 <div class="kicker">siteproof report · a blind analysis scored against each site's randomization</div>
 <h1>{_esc(self.title)}</h1>
 <p>{_esc(self.headline)}</p>
 </header>
-<nav class="contents">{nav}</nav>
+<nav class="contents" aria-label="sections"><a href="#top">top</a>{nav}</nav>
 <section class="summary" id="summary">{self.summary.html()}</section>
 {body}
 <footer>Written by siteproof {_esc(__version__)}. This file is self-contained: its styles and figures are inside it and
 it fetches nothing. Figures are also in the folder <code>{FIGURE_DIR}/</code> as SVG and PNG.</footer>
+<a class="back-to-top" href="#top">↑ back to top</a>
 </body>
 </html>
 """

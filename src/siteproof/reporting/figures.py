@@ -7,22 +7,21 @@ sidecar) and draws them; nothing is estimated here.  Conventions shared by every
   colour always comes with a distinct marker or line style (theme.py), and verdicts are written as words;
 * an interval drawn as a thin line is a 95 % CI; a thick segment on top of it is the 90 % CI used by the
   equivalence test (two one-sided tests at α = 0.05, Schuirmann 1987);
-* every axis label names its unit.
+* every axis label names its unit;
+* labels never overprint: point labels are placed where they fit (or left out), and with more than
+  ``MANY_SITES`` sites a per-site figure is a sorted dot plot naming only the extreme sites.
 
-SVG output keeps text as text (``svg.fonttype = 'none'``) so the inline figures stay small, and every id in
-an SVG is prefixed with the figure's name so that many figures can live in one HTML page.
+The shared machinery (inputs, rendering to inline SVG and PNG, label placement) is in :mod:`.figures_base`;
+the per-model small multiples (GATES, TOC and cost curves) are in :mod:`.figures_curves`; both are
+re-exported here.
 """
 
 from __future__ import annotations
 
-import functools
-import io
 import math
-import re
 from dataclasses import dataclass
-from typing import Callable, ParamSpec, Sequence
+from typing import Sequence
 
-import matplotlib
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
@@ -30,126 +29,14 @@ from matplotlib.lines import Line2D
 
 from ..core.interpret import DIFFERENT, Z_90, Z_95
 from . import theme
+from .figures_base import (MANY_SITES, Curve, Interval, Rendered, extremes, finite_values, height_for, identity_line,
+                           intervals_h, label_extremes, labels_on_y, new_figure, pad_x, place_labels, render,
+                           sorted_dots, span_unit, styled)
+from .figures_curves import curves_figure, gates_figure
 
-P = ParamSpec("P")
-
-
-# ----------------------------------------------------------------------------------------------------------
-# plain inputs
-# ----------------------------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Interval:
-    """A point estimate with its 95 % interval (``low``, ``high``); NaN where a value is unavailable."""
-
-    label: str
-    estimate: float
-    low: float
-    high: float
-
-    @property
-    def finite(self) -> bool:
-        return all(math.isfinite(v) for v in (self.estimate, self.low, self.high))
-
-
-@dataclass(frozen=True)
-class Curve:
-    """A curve y(x) with a pointwise standard error (a 95 % band is y ± 1.96·se)."""
-
-    x: Sequence[float]
-    y: Sequence[float]
-    se: Sequence[float]
-
-
-@dataclass(frozen=True)
-class Rendered:
-    """One figure as inline SVG text (ids prefixed) and as PNG bytes."""
-
-    name: str
-    svg: str
-    png: bytes
-
-
-# ----------------------------------------------------------------------------------------------------------
-# rendering
-# ----------------------------------------------------------------------------------------------------------
-def styled(draw: Callable[P, Figure]) -> Callable[P, Figure]:
-    """Run a figure builder inside the report's matplotlib style (rcParams are read while drawing)."""
-
-    @functools.wraps(draw)
-    def wrapper(*args: P.args, **kwargs: P.kwargs) -> Figure:
-        with matplotlib.rc_context(theme.matplotlib_rc()):
-            return draw(*args, **kwargs)
-
-    return wrapper
-
-
-def new_figure(width: float, height: float, ncols: int = 1, nrows: int = 1, **kwargs) -> tuple[Figure, np.ndarray]:
-    """A Figure (no pyplot, no global state) with an array of axes; call it inside a :func:`styled` builder."""
-    fig = Figure(figsize=(width, height), layout="constrained")
-    return fig, fig.subplots(nrows, ncols, squeeze=False, **kwargs)
-
-
-def render(fig: Figure, name: str) -> Rendered:
-    """SVG text ready to inline in HTML (no XML prolog, no metadata, ids prefixed, scalable) and PNG bytes."""
-    with matplotlib.rc_context(theme.matplotlib_rc()):
-        svg_buffer = io.StringIO()
-        fig.savefig(svg_buffer, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
-        fig.set_layout_engine("none")  # keep the layout just computed: the PNG needs no second layout pass
-        png_buffer = io.BytesIO()
-        fig.savefig(png_buffer, format="png", metadata={"Software": None})
-    return Rendered(name, _inline_svg(svg_buffer.getvalue(), name), png_buffer.getvalue())
-
-
-def _inline_svg(svg: str, name: str) -> str:
-    """Strip the XML prolog/DOCTYPE/metadata, prefix every id with ``name`` and let the SVG scale to its box."""
-    svg = svg[svg.index("<svg"):]
-    svg = re.sub(r"\s*<metadata>.*?</metadata>", "", svg, flags=re.S)
-    svg = re.sub(r'\bid="([^"]+)"', lambda m: f'id="{name}-{m.group(1)}"', svg)
-    svg = re.sub(r'(xlink:href|href)="#([^"]+)"', lambda m: f'{m.group(1)}="#{name}-{m.group(2)}"', svg)
-    svg = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{name}-{m.group(1)})", svg)
-    head = re.match(r'<svg[^>]*?\swidth="([\d.]+)pt" height="([\d.]+)pt"', svg)
-    if head:
-        width = head.group(1)
-        svg = svg.replace(f'width="{width}pt" height="{head.group(2)}pt"', f'style="max-width: {width}pt"', 1)
-    return svg.replace("<svg ", f'<svg id="fig-{name}" role="img" ', 1).strip() + "\n"
-
-
-# ----------------------------------------------------------------------------------------------------------
-# shared drawing helpers
-# ----------------------------------------------------------------------------------------------------------
-def _intervals(ax: Axes, rows: Sequence[Interval], y: np.ndarray, role: str, label: str | None = None,
-               filled: bool = True) -> None:
-    """Horizontal 95 % intervals at heights ``y`` (rows with NaN are skipped)."""
-    colour = theme.ROLE[role]
-    first = True
-    for row, yy in zip(rows, y):
-        if not row.finite:
-            continue
-        ax.plot([row.low, row.high], [yy, yy], color=colour, lw=1.6, solid_capstyle="butt")
-        ax.plot(row.estimate, yy, theme.MARKER.get(role, "o"), color=colour, mfc=colour if filled else "white",
-                mew=1.4, ms=6.5, label=label if first else None, zorder=3)
-        first = False
-
-
-def _labels_on_y(ax: Axes, labels: Sequence[str]) -> np.ndarray:
-    y = np.arange(len(labels))[::-1].astype(float)
-    ax.set_yticks(y, labels)
-    ax.set_ylim(-0.7, len(labels) - 0.3)
-    ax.grid(axis="y", visible=False)
-    return y
-
-
-def _identity(ax: Axes, low: float, high: float, label: str) -> None:
-    ax.plot([low, high], [low, high], ls=(0, (4, 3)), lw=1.0, color=theme.MUTED, label=label, zorder=1)
-
-
-def _height(rows: int, extra: float = 1.3) -> float:
-    return max(2.4, theme.ROW_HEIGHT * rows + extra)
-
-
-def _finite(values: Sequence[float]) -> np.ndarray:
-    arr = np.asarray(values, dtype=float)
-    return arr[np.isfinite(arr)]
+__all__ = ["Curve", "Interval", "Rendered", "RulePoint", "average_effect_figure", "calibration_figure",
+           "curves_figure", "forest_figure", "gates_figure", "new_figure", "paired_rows_figure",
+           "propensity_histogram", "propensity_quantiles", "rates_figure", "render", "rules_figure", "styled"]
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -157,12 +44,26 @@ def _finite(values: Sequence[float]) -> np.ndarray:
 # ----------------------------------------------------------------------------------------------------------
 @styled
 def rates_figure(sites: Sequence[str], realized: Sequence[Interval], declared: Sequence[float]) -> Figure:
-    """Realized treated share per site (with its 95 % binomial Wald interval) beside the declared rate."""
-    fig, axes = new_figure(theme.FIG_WIDTH, _height(len(sites)))
-    ax = axes[0, 0]
-    y = _labels_on_y(ax, sites)
-    _intervals(ax, realized, y, "design", label="realized share treated (95 % CI)")
+    """Realized treated share per site (with its 95 % binomial Wald interval) beside the declared rate.
+
+    Up to :data:`MANY_SITES` sites one row per site; beyond, a dot plot of the sites sorted by realized share
+    (declared rates as open diamonds above the same rank) naming the extreme sites."""
     dec = np.asarray(declared, dtype=float)
+    if len(sites) > MANY_SITES:
+        fig, axes = new_figure(theme.FIG_WIDTH, 3.8)
+        ax = axes[0, 0]
+        order = sorted_dots(ax, realized, "design", "realized share treated (95 % CI)")
+        if np.isfinite(dec).any():
+            ax.plot(np.arange(1, len(sites) + 1), dec[order], "D", ms=5, mfc="none", mec=theme.ROLE["pooled"],
+                    mew=1.2, label="declared rate", zorder=4)
+        ax.set_ylabel("share assigned to treatment\n(proportion)")
+        fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2)
+        label_extremes(ax, realized, order, extra=list(dec))
+        return fig
+    fig, axes = new_figure(theme.FIG_WIDTH, height_for(len(sites)))
+    ax = axes[0, 0]
+    y = labels_on_y(ax, sites)
+    intervals_h(ax, realized, y, "design", label="realized share treated (95 % CI)")
     if np.isfinite(dec).any():
         ax.plot(dec, y, "D", ms=8, mfc="none", mec=theme.ROLE["pooled"], mew=1.6, label="declared rate", zorder=4)
     ax.set_xlabel("share of the site's units assigned to treatment (proportion)")
@@ -199,7 +100,7 @@ def propensity_quantiles(arms: dict[str, dict[str, float]], band: Sequence[float
     fig, axes = new_figure(theme.FIG_WIDTH, 2.2)
     ax = axes[0, 0]
     names = list(arms)
-    y = _labels_on_y(ax, names)
+    y = labels_on_y(ax, names)
     for name, yy in zip(names, y):
         q = arms[name]
         colour = theme.ROLE.get(name, theme.INK)
@@ -225,9 +126,9 @@ def calibration_figure(bins: Sequence[Interval], bin_means: Sequence[float], sit
         left.plot([x, x], [row.low, row.high], color=theme.ROLE["design"], lw=1.4)
     left.plot(xs, [b.estimate for b in bins], "s-", color=theme.ROLE["design"], ms=5.5, lw=1.0,
               label="mean known rate in the bin")
-    values = np.concatenate([xs, _finite([b.low for b in bins]), _finite([b.high for b in bins])])
-    lo, hi = _span(values)
-    _identity(left, lo, hi, "ideal: equal")
+    values = np.concatenate([xs, finite_values([b.low for b in bins]), finite_values([b.high for b in bins])])
+    lo, hi = span_unit(values)
+    identity_line(left, lo, hi, "ideal: equal")
     left.set_xlabel("mean learned ê in the bin (probability)")
     left.set_ylabel("known assignment rate (probability)")
     left.set_title("by bin of ê")
@@ -236,26 +137,31 @@ def calibration_figure(bins: Sequence[Interval], bin_means: Sequence[float], sit
     for row, r in zip(sites, rates):
         right.plot([r, r], [row.low, row.high], color=theme.ROLE["blind"], lw=1.4)
     right.plot(rates, [s.estimate for s in sites], "o", color=theme.ROLE["blind"], ms=7, label="mean ê of the site")
-    for row, r in zip(sites, rates):
-        right.annotate(row.label, (r, row.estimate), xytext=(6, 0), textcoords="offset points", va="center",
-                       fontsize=theme.BASE_FONT - 1.5, color=theme.INK)
-    values = np.concatenate([rates, _finite([s.low for s in sites]), _finite([s.high for s in sites])])
-    lo, hi = _span(values)
-    _identity(right, lo, hi, "ê equal to the site's rate")
+    values = np.concatenate([rates, finite_values([s.low for s in sites]), finite_values([s.high for s in sites])])
+    lo, hi = span_unit(values)
+    identity_line(right, lo, hi, "ê equal to the site's rate")
     right.set_xlabel("known assignment rate of the site (probability)")
     right.set_ylabel("learned ê, site mean and 10–90 % range")
     right.set_title("by site")
     right.legend(loc="upper left")
+    _label_sites(right, sites, rates)
     return fig
 
 
-def _span(values: np.ndarray, pad: float = 0.04) -> tuple[float, float]:
-    values = _finite(values)
-    if values.size == 0:
-        return 0.0, 1.0
-    lo, hi = float(values.min()), float(values.max())
-    width = max(hi - lo, 0.05)
-    return max(0.0, lo - pad * width * 2), min(1.0, hi + pad * width * 2)
+LABELLED_SITES = 12  # up to this many sites every site is named in the calibration panel; beyond, the extremes
+
+
+def _label_sites(ax: Axes, sites: Sequence[Interval], rates: np.ndarray) -> None:
+    """Name the sites of the calibration panel, farthest from the identity line first, where a label fits
+    (up to :data:`LABELLED_SITES` sites all of them, beyond only the extremes)."""
+    gap = np.asarray([s.estimate for s in sites], dtype=float) - rates
+    clear = [(float(r), s.estimate) for r, s in zip(rates, sites)]
+    if len(sites) <= LABELLED_SITES:
+        order = [int(i) for i in np.argsort(-np.abs(np.nan_to_num(gap, nan=-1.0)), kind="stable")]
+    else:  # a crowded panel: only the extremes, and only clear of every range drawn
+        order = extremes(gap, 3)
+        clear += [(float(r), float(v)) for r, s in zip(rates, sites) if s.finite for v in np.linspace(s.low, s.high, 7)]
+    place_labels(ax, [(float(rates[i]), sites[i].estimate, sites[i].label) for i in order], keep_clear=clear)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -271,17 +177,17 @@ def average_effect_figure(blind: Sequence[Interval], design: Interval, differenc
 
     ``own_design`` gives, per row, the design-based value of another estimand that the row is compared with
     (NaN for rows compared with the pooled design estimate); it is drawn as a black square on the left."""
-    fig, axes = new_figure(theme.FIG_WIDTH + 1.5, _height(len(blind), 1.6), ncols=2, sharey=True,
+    fig, axes = new_figure(theme.FIG_WIDTH + 1.5, height_for(len(blind), 1.6), ncols=2, sharey=True,
                            gridspec_kw={"width_ratios": [1.1, 1.0]})
     left, right = axes[0]
-    y = _labels_on_y(left, [b.label for b in blind])
+    y = labels_on_y(left, [b.label for b in blind])
     if design.finite:
         left.axvspan(design.low, design.high, color=theme.BAND_GREY, zorder=0, label="design-based 95 % CI")
         left.axvline(design.estimate, color=theme.ROLE["design"], lw=1.4, label="design-based estimate")
         for side in (-1, 1):
             left.axvline(design.estimate + side * margin, color=theme.ROLE["band"], ls=(0, (5, 3)), lw=1.3,
                          label="design ± δ" if side < 0 else None)
-    _intervals(left, blind, y, "blind", label="blind estimate (95 % CI)")
+    intervals_h(left, blind, y, "blind", label="blind estimate (95 % CI)")
     if own_design is not None:
         own = np.asarray(own_design, dtype=float)
         if np.isfinite(own).any():
@@ -307,16 +213,8 @@ def average_effect_figure(blind: Sequence[Interval], design: Interval, differenc
     handles += [Line2D([], [], color=theme.ROLE["blind"], lw=1.4), Line2D([], [], color=theme.ROLE["blind"], lw=5, alpha=0.75)]
     labels += ["95 % CI (difference test)", "90 % CI (equivalence test)"]
     right.legend(handles, labels, loc="upper center", bbox_to_anchor=(0.5, -0.22), ncols=1)
-    _pad_x(right, [v for r in differences for v in (r.low, r.high)] + [-margin, margin])
+    pad_x(right, [v for r in differences for v in (r.low, r.high)] + [-margin, margin])
     return fig
-
-
-def _pad_x(ax: Axes, values: Sequence[float], pad: float = 0.08) -> None:
-    values = _finite(values)
-    if values.size:
-        lo, hi = float(values.min()), float(values.max())
-        width = max(hi - lo, 1e-9)
-        ax.set_xlim(lo - pad * width, hi + pad * width)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -326,14 +224,18 @@ def _pad_x(ax: Axes, values: Sequence[float], pad: float = 0.08) -> None:
 def forest_figure(sites: Sequence[Interval], excluded: Sequence[str], pooled: Interval, random_mean: Interval | None,
                   prediction: tuple[float, float] | None, unit: str) -> Figure:
     """Per-site difference in means (95 % CI), the pooled design-based estimate, the random-effects mean
-    (95 % CI) and, as a dashed line, the 95 % prediction interval for the effect in a new site."""
+    (95 % CI) and, as a dashed line, the 95 % prediction interval for the effect in a new site.  With more
+    than :data:`MANY_SITES` sites: a dot plot of the sites sorted by their estimate, the summaries drawn as
+    horizontal lines across it."""
+    if len(sites) > MANY_SITES:
+        return _forest_dots(sites, excluded, pooled, random_mean, prediction, unit)
     labels = [s.label for s in sites] + ["pooled (design-based)"]
     if random_mean is not None:
         labels.append("random-effects mean")
-    fig, axes = new_figure(theme.FIG_WIDTH, _height(len(labels), 1.6))
+    fig, axes = new_figure(theme.FIG_WIDTH, height_for(len(labels), 1.6))
     ax = axes[0, 0]
-    y = _labels_on_y(ax, labels)
-    _intervals(ax, sites, y[: len(sites)], "design", label="site difference in means (95 % CI)")
+    y = labels_on_y(ax, labels)
+    intervals_h(ax, sites, y[: len(sites)], "design", label="site difference in means (95 % CI)")
     summaries = [(pooled, y[len(sites)], "pooled design-based estimate (95 % CI)")]
     if random_mean is not None:
         summaries.append((random_mean, y[len(sites) + 1], "random-effects mean (95 % CI)"))
@@ -350,11 +252,49 @@ def forest_figure(sites: Sequence[Interval], excluded: Sequence[str], pooled: In
         ax.axvline(pooled.estimate, color=theme.MUTED, lw=0.8, ls=":")
     ax.axvline(0.0, color=theme.INK, lw=0.8)
     ax.set_xlabel(f"difference in means, treated − control ({unit})")
-    if excluded:
-        ax.set_title("not shown (fewer than 2 units in an arm): " + ", ".join(excluded), loc="left",
-                     fontsize=theme.BASE_FONT - 1, fontweight="normal", color=theme.MUTED)
+    _excluded_title(ax, excluded)
     fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2)
     return fig
+
+
+def _forest_dots(sites: Sequence[Interval], excluded: Sequence[str], pooled: Interval, random_mean: Interval | None,
+                 prediction: tuple[float, float] | None, unit: str) -> Figure:
+    """The many-site forest: sites sorted by estimate; pooled estimate with its 95 % CI as a shaded band,
+    random-effects mean dashed, the 95 % prediction interval as two dotted lines."""
+    fig, axes = new_figure(theme.FIG_WIDTH, 4.4)
+    ax = axes[0, 0]
+    order = sorted_dots(ax, sites, "design", "site difference in means (95 % CI)")
+    if pooled.finite:
+        ax.axhspan(pooled.low, pooled.high, color=theme.ROLE["pooled"], alpha=0.16, lw=0, zorder=0)
+        ax.axhline(pooled.estimate, color=theme.ROLE["pooled"], lw=1.4, label="pooled design-based estimate "
+                   "(band: 95 % CI)")
+    if random_mean is not None and random_mean.finite:
+        ax.axhline(random_mean.estimate, color=theme.ROLE["pooled"], lw=1.2, ls=(0, (6, 3)),
+                   label="random-effects mean")
+    if random_mean is not None and prediction is not None and all(map(math.isfinite, prediction)):
+        for k, edge in enumerate(prediction):
+            ax.axhline(edge, color=theme.ROLE["pooled"], lw=1.0, ls=(0, (1, 2)),
+                       label="95 % prediction interval, new site" if k == 0 else None)
+    ax.axhline(0.0, color=theme.INK, lw=0.8)
+    ax.set_ylabel(f"difference in means,\ntreated − control ({unit})")
+    _excluded_title(ax, excluded)
+    fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2)
+    label_extremes(ax, sites, order, extra=[0.0, pooled.low, pooled.high, *(prediction or ())])
+    return fig
+
+
+EXCLUDED_NAMED = 8  # excluded sites named above a forest plot; the rest are counted
+
+
+def _excluded_title(ax: Axes, excluded: Sequence[str]) -> None:
+    """Name the sites left out of the forest plot above it (the first few, then a count)."""
+    if not excluded:
+        return
+    names = ", ".join(excluded[:EXCLUDED_NAMED])
+    if len(excluded) > EXCLUDED_NAMED:
+        names += f" and {len(excluded) - EXCLUDED_NAMED} more"
+    ax.set_title(f"not shown (fewer than 2 units in an arm): {names}", loc="left",
+                 fontsize=theme.BASE_FONT - 1, fontweight="normal", color=theme.MUTED)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -366,105 +306,17 @@ def paired_rows_figure(labels: Sequence[str], first: Sequence[Interval], second:
                        legend: tuple[str, str] = ("blind (95 % CI)", "design-based (95 % CI)")) -> Figure:
     """One row per item: the first 95 % CI (blue circle; by default the blind claim) and, when given, the second
     one (black square; by default the design-based value) just below it; a vertical line marks ``reference``."""
-    fig, axes = new_figure(theme.FIG_WIDTH, _height(len(labels), 1.5))
+    fig, axes = new_figure(theme.FIG_WIDTH, height_for(len(labels), 1.5))
     ax = axes[0, 0]
-    y = _labels_on_y(ax, labels)
+    y = labels_on_y(ax, labels)
     offset = 0.16 if second is not None else 0.0
-    _intervals(ax, first, y + offset, "blind", label=legend[0], filled=False)
+    intervals_h(ax, first, y + offset, "blind", label=legend[0], filled=False)
     if second is not None:
-        _intervals(ax, second, y - offset, "design", label=legend[1])
+        intervals_h(ax, second, y - offset, "design", label=legend[1])
     ax.axvline(reference, color=theme.INK, lw=0.9)
     ax.set_xlabel(xlabel)
     fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2)
     return fig
-
-
-@styled
-def gates_figure(models: Sequence[str], blind: Sequence[Sequence[Interval]],
-                 design: Sequence[Sequence[Interval]] | None, unit: str) -> Figure:
-    """GATES by quantile group of τ̂ (1 = lowest τ̂), one panel per model: blind (open circles, 95 % CI) beside
-    the design-based re-scoring (black squares)."""
-    fig, flat = _panels(len(models))
-    for i, model in enumerate(models):
-        ax = flat[i]
-        groups = np.arange(1, len(blind[i]) + 1, dtype=float)
-        _vertical(ax, blind[i], groups - 0.12, "blind", "blind (95 % CI)" if i == 0 else None)
-        if design is not None:
-            _vertical(ax, design[i], groups + 0.12, "design", "design-based" if i == 0 else None)
-        ax.axhline(0.0, color=theme.INK, lw=0.8)
-        ax.set_xticks(groups)
-        ax.set_title(f"model {model}")
-    _finish_panels(fig, flat, len(models), "quantile group of τ̂ (1 = lowest predicted effect)",
-                   f"group effect ({unit})")
-    return fig
-
-
-def _panels(count: int, **kwargs) -> tuple[Figure, np.ndarray]:
-    """A grid of up to 3 columns of panels sharing their y axis."""
-    ncols = min(3, count)
-    nrows = math.ceil(count / ncols)
-    fig, axes = new_figure(theme.FIG_WIDTH, 2.6 * nrows + 0.9, ncols=ncols, nrows=nrows, sharey=True, **kwargs)
-    return fig, axes.ravel()
-
-
-def _finish_panels(fig: Figure, flat: np.ndarray, used: int, xlabel: str, ylabel: str) -> None:
-    for ax in flat[used:]:
-        ax.set_visible(False)
-    fig.supxlabel(xlabel, fontsize=theme.BASE_FONT)
-    fig.supylabel(ylabel, fontsize=theme.BASE_FONT)
-    handles, labels = flat[0].get_legend_handles_labels()
-    if handles:
-        fig.legend(handles, labels, loc="outside upper center", ncols=len(handles))
-
-
-def _vertical(ax: Axes, rows: Sequence[Interval], x: np.ndarray, role: str, label: str | None) -> None:
-    colour = theme.ROLE[role]
-    for row, xx in zip(rows, x):
-        if row.finite:
-            ax.plot([xx, xx], [row.low, row.high], color=colour, lw=1.5)
-    ax.plot(x, [r.estimate for r in rows], theme.MARKER[role], color=colour, ms=6, label=label,
-            mfc=colour if role == "design" else "white", mew=1.4)
-
-
-@styled
-def curves_figure(models: Sequence[str], blind: Sequence[Curve], design: Sequence[Curve] | None,
-                  xlabel: str, ylabel: str, zoom_from: float = 0.0) -> Figure:
-    """Small multiples of curves with 95 % pointwise bands (y ± 1.96·se): blind solid blue with a shaded
-    band, design-based dashed black with a dotted band.  The y axis covers the bands where x ≥ ``zoom_from``
-    (the first points of a TOC curve rest on a handful of units and can have huge bands)."""
-    fig, flat = _panels(len(models), sharex=True)
-    spans = []
-    for i, model in enumerate(models):
-        ax = flat[i]
-        spans.append(_band(ax, blind[i], "blind", "-", "blind (95 % band)" if i == 0 else None, zoom_from))
-        if design is not None:
-            spans.append(_band(ax, design[i], "design", (0, (5, 2)), "design-based (95 % band)" if i == 0 else None,
-                               zoom_from))
-        ax.axhline(0.0, color=theme.INK, lw=0.8)
-        ax.set_title(f"model {model}")
-    lo = min(s[0] for s in spans)
-    hi = max(s[1] for s in spans)
-    if math.isfinite(lo) and math.isfinite(hi) and hi > lo:
-        pad = 0.06 * (hi - lo)
-        flat[0].set_ylim(min(lo, 0.0) - pad, max(hi, 0.0) + pad)
-    _finish_panels(fig, flat, len(models), xlabel, ylabel)
-    return fig
-
-
-def _band(ax: Axes, curve: Curve, role: str, style, label: str | None, zoom_from: float) -> tuple[float, float]:
-    """Draw the curve and its band; return the band's range over x ≥ ``zoom_from``."""
-    x = np.asarray(curve.x, dtype=float)
-    y = np.asarray(curve.y, dtype=float)
-    se = np.asarray(curve.se, dtype=float)
-    low, high = y - Z_95 * se, y + Z_95 * se
-    colour = theme.ROLE[role]
-    if role == "design":
-        ax.fill_between(x, low, high, facecolor="none", edgecolor=colour, hatch="....", lw=0, alpha=0.35)
-    else:
-        ax.fill_between(x, low, high, color=colour, alpha=0.18, lw=0)
-    ax.plot(x, y, color=colour, ls=style, lw=1.7, label=label)
-    keep = (x >= zoom_from) & np.isfinite(low) & np.isfinite(high)
-    return (float(low[keep].min()), float(high[keep].max())) if keep.any() else (math.inf, -math.inf)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -481,16 +333,43 @@ class RulePoint:
     random_value: float
 
 
+FAMILY_COLOURS = ("blue", "vermillion", "bluish_green", "orange", "reddish_purple")  # dark enough on white
+FAMILY_MARKERS = ("o", "s", "^", "D", "v")
+TREE_STYLE = {"marker": "*", "color": theme.INK, "ms": 12, "mec": "white", "mew": 0.8}
+DODGE = 0.012        # horizontal shift between families' CI bars, as a share of the x range
+SHARE_PAD = 0.04     # margin around the treated shares on the x axis (proportion)
+
+
+def _family_style(j: int, family: str) -> dict:
+    """Colour and marker of a rule family: one per CATE model; the tree a black star."""
+    if family == "tree":
+        return dict(TREE_STYLE)
+    return {"marker": FAMILY_MARKERS[j % len(FAMILY_MARKERS)], "color": theme.OKABE_ITO[FAMILY_COLOURS[j % len(FAMILY_COLOURS)]],
+            "ms": 6.5, "mec": theme.INK, "mew": 0.6}
+
+
+def _share_range(points: Sequence[RulePoint]) -> tuple[float, float]:
+    """The x range: the treated shares of all rules with a margin, inside [0, 1], at least 0.2 wide."""
+    shares = finite_values([p.share for p in points])
+    if shares.size == 0:
+        return 0.0, 1.0
+    lo, hi = float(shares.min()) - SHARE_PAD, float(shares.max()) + SHARE_PAD
+    if hi - lo < 0.2:
+        mid = (lo + hi) / 2
+        lo, hi = mid - 0.1, mid + 0.1
+    return max(-0.01, lo), min(1.01, hi)
+
+
 @styled
 def rules_figure(blind: Sequence[RulePoint], design: Sequence[RulePoint], unit: str) -> Figure:
     """Value of each rule against its treated share, blind (left) and design-based (right): one line per CATE
-    model through its rules in order of treated share, a separate marker per family, 95 % CIs as thin bars,
-    and random allocation at the same share as a grey dashed line (a rule above it has a positive gain)."""
+    model through its rules in order of treated share, a separate marker per family (the tree a black star),
+    95 % CIs as bars shifted slightly per family so they never cover each other, and random allocation at the
+    same share as a grey dashed line (a rule above it has a positive gain).  The x axis covers the shares the
+    rules treat, not all of [0, 1]."""
     fig, axes = new_figure(theme.FIG_WIDTH, 4.3, ncols=2, sharey=True)
     families = list(dict.fromkeys(p.family for p in blind))
-    colours = [theme.OKABE_ITO[k] for k in ("blue", "vermillion", "bluish_green", "orange", "reddish_purple",
-                                             "sky_blue", "black")]
-    markers = ["o", "s", "^", "D", "v", "P", "X"]
+    lo, hi = _share_range(list(blind) + list(design))
     for ax, points, title in ((axes[0, 0], blind, "blind (learned ê)"), (axes[0, 1], design, "design-based (known rates)")):
         random = sorted((p.share, p.random_value) for p in points if math.isfinite(p.random_value))
         if random:
@@ -498,15 +377,17 @@ def rules_figure(blind: Sequence[RulePoint], design: Sequence[RulePoint], unit: 
                     label="random allocation, same share", zorder=1)
         for j, family in enumerate(families):
             mine = sorted((p for p in points if p.family == family), key=lambda p: p.share)
-            colour, marker = colours[j % len(colours)], markers[j % len(markers)]
+            style = _family_style(j, family)
+            shift = (j - (len(families) - 1) / 2) * DODGE * (hi - lo)
             for p in mine:
                 if p.value.finite:
-                    ax.plot([p.share, p.share], [p.value.low, p.value.high], color=colour, lw=0.9, alpha=0.45)
-            ax.plot([p.share for p in mine], [p.value.estimate for p in mine], marker=marker, color=colour, ms=6,
-                    lw=1.2 if len(mine) > 1 else 0, label=family if family == "tree" else f"model {family}")
+                    ax.plot([p.share + shift] * 2, [p.value.low, p.value.high], color=style["color"], lw=1.4,
+                            alpha=0.85, solid_capstyle="butt", zorder=2)
+            ax.plot([p.share + shift for p in mine], [p.value.estimate for p in mine], ls="-" if len(mine) > 1 else "",
+                    lw=1.2, zorder=3, label=family if family == "tree" else f"model {family}", **style)
         ax.set_title(title)
         ax.set_xlabel("share of units the rule treats (proportion)")
-        ax.set_xlim(-0.02, 1.02)
+        ax.set_xlim(lo, hi)
     axes[0, 0].set_ylabel(f"value of the rule ({unit})")
     handles, labels = axes[0, 0].get_legend_handles_labels()
     fig.legend(handles, labels, loc="outside lower center", ncols=min(4, len(handles)))

@@ -131,12 +131,19 @@ header.masthead {{ border-bottom: 3px double var(--ink); padding: 28px 0 14px; m
 header.masthead .kicker {{ font-size: 13px; letter-spacing: .12em; text-transform: uppercase; color: var(--muted); }}
 header.masthead h1 {{ font-size: 30px; line-height: 1.15; margin: 4px 0 6px; }}
 header.masthead p {{ margin: 2px 0; color: var(--muted); }}
-nav.contents {{ font-size: 14px; margin: 10px 0 20px; display: flex; flex-wrap: wrap; gap: 4px 16px; }}
+nav.contents {{ position: sticky; top: 0; z-index: 5; font-size: 14px; margin: 10px -28px 20px; padding: 6px 28px;
+  display: flex; flex-wrap: nowrap; gap: 4px 16px; overflow-x: auto; white-space: nowrap; background: var(--paper);
+  border-bottom: 1px solid var(--rule); }}
 nav.contents a {{ color: var(--ink); text-decoration: none; border-bottom: 1px solid var(--rule); }}
+nav.contents a:first-child {{ color: var(--muted); }}
 section.summary {{ margin: 6px 0 10px; }}
+section.part, section.summary, #top {{ scroll-margin-top: 48px; }}
 section.part {{ border-top: 1px solid var(--rule); padding-top: 10px; margin-top: 34px; }}
-section.part > h2 {{ font-size: 22px; margin: 4px 0 10px; }}
+section.part > h2 {{ font-size: 22px; margin: 4px 0 10px; display: flex; align-items: baseline; gap: 0 4px; }}
 section.part > h2 .num {{ display: inline-block; min-width: 1.8em; color: var(--muted); font-weight: normal; }}
+a.to-top {{ margin-left: auto; font-size: 13px; font-weight: normal; color: var(--muted); text-decoration: none; }}
+a.back-to-top {{ position: fixed; right: 14px; bottom: 14px; z-index: 6; font-size: 13px; padding: 4px 10px;
+  color: var(--ink); background: #fff; border: 1px solid var(--ink); border-radius: 3px; text-decoration: none; }}
 h3 {{ font-size: 17px; margin: 22px 0 6px; }}
 p.reading {{ border-left: 4px solid var(--blind); background: #fff; padding: 8px 12px; margin: 8px 0 14px; }}
 p.reading b {{ font-weight: 600; }}
@@ -145,14 +152,22 @@ p.absent {{ font-style: italic; color: var(--muted); background: var(--panel); p
 figure {{ margin: 10px 0 18px; }}
 figure svg {{ width: 100%; height: auto; display: block; background: #fff; }}
 figcaption {{ font-size: 13.5px; color: var(--muted); margin-top: 4px; }}
-div.table {{ margin: 10px 0 16px; }}
-div.scroll {{ overflow-x: auto; }}
+div.table {{ margin: 10px 0 16px; max-width: 100%; }}
+div.scroll {{ overflow-x: auto; max-width: 100%; }}
 caption {{ text-align: left; font-weight: 600; font-size: 15px; padding: 4px 0; }}
 table {{ border-collapse: collapse; margin: 8px 0 6px; font-size: 13.5px; font-variant-numeric: tabular-nums; }}
 th, td {{ padding: 4px 10px; border-bottom: 1px solid var(--rule); text-align: right; vertical-align: top; }}
 th {{ border-bottom: 1.5px solid var(--ink); font-weight: 600; }}
 th:first-child, td:first-child {{ text-align: left; }}
+tbody tr {{ background: var(--paper); }}
 tbody tr:nth-child(even) {{ background: var(--panel); }}
+thead tr {{ background: var(--paper); }}
+th.pin-start, td.pin-start {{ position: sticky; left: 0; z-index: 1; background: inherit; }}
+th.pin-end, td.pin-end {{ position: sticky; right: 0; z-index: 1; background: inherit;
+  border-left: 1px solid var(--rule); box-shadow: -6px 0 6px -6px rgba(31, 36, 48, .35); }}
+div.table:has(> details.more:not([open])) tr.more {{ display: none; }}
+details.more > summary {{ cursor: pointer; font-size: 13.5px; color: var(--ink); margin: 2px 0 6px; }}
+details.more[open] > summary .closed, details.more:not([open]) > summary .opened {{ display: none; }}
 td {{ white-space: nowrap; }}
 th.text {{ text-align: left; }}
 td.text {{ text-align: left; white-space: normal; min-width: 7em; }}
@@ -167,8 +182,11 @@ dl.facts {{ display: grid; grid-template-columns: max-content 1fr; gap: 2px 16px
 dl.facts dt {{ color: var(--muted); }}
 dl.facts dd {{ margin: 0; font-family: {MONO_STACK_CSS}; word-break: break-all; }}
 footer {{ margin-top: 40px; border-top: 3px double var(--ink); padding-top: 8px; font-size: 13px; color: var(--muted); }}
+@media (max-width: 900px) {{ body {{ padding: 0 14px 56px; }} nav.contents {{ margin: 10px -14px 16px;
+  padding: 6px 14px; }} td.text {{ min-width: 5em; }} }}
 @media print {{ body {{ max-width: none; }} section.summary {{ margin: 6px 0 10px; }}
-section.part {{ break-inside: avoid-page; }} }}
+section.part {{ break-inside: avoid-page; }} nav.contents {{ position: static; flex-wrap: wrap; }}
+a.back-to-top, a.to-top, details.more {{ display: none; }} tr.more {{ display: table-row !important; }} }}
 """
 
 
