@@ -127,7 +127,7 @@ def read_key(key_dir: Path | str) -> BenchmarkKey:
         meta = json.loads(meta_path.read_text(encoding="utf-8"))
     except (ValueError, OSError) as exc:
         raise SiteproofError(f"cannot read {meta_path} ({exc})", "restore the key from the sealed copy") from None
-    if meta.get("schema") != KEY_SCHEMA or meta.get("version") != FORMAT_VERSION:
+    if not isinstance(meta, dict) or meta.get("schema") != KEY_SCHEMA or meta.get("version") != FORMAT_VERSION:
         raise SiteproofError(f"{meta_path} is not a version-{FORMAT_VERSION} benchmark key",
                              "seal the benchmark again with this version of siteproof")
     units = pd.read_csv(units_path, dtype={TOKEN: str, "row_key": str, "site": str, "stratum": str},
@@ -135,7 +135,34 @@ def read_key(key_dir: Path | str) -> BenchmarkKey:
     if len(units) != meta["n"]:
         raise SiteproofError(f"{units_path} has {len(units)} rows but the key says {meta['n']}",
                              "restore the key from the sealed copy")
+    _check_key(meta, units, meta_path, units_path)
     return BenchmarkKey(path, meta, units)
+
+
+def _check_key(meta: dict[str, Any], units: pd.DataFrame, meta_path: Path, units_path: Path) -> None:
+    """Refuse a damaged key: a seed that is not a whole number, rates that are not probabilities in (0, 1),
+    a graded flag other than 0/1, or sites in units.csv that differ from the sites key.json describes."""
+    def damaged(where: Path, what: str) -> SiteproofError:
+        return SiteproofError(f"the benchmark key is damaged: {where} {what}", "restore the key from the sealed copy")
+
+    seed = meta.get("seed")
+    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed < 2**32:
+        raise damaged(meta_path, f"has the seed {seed!r}, not a whole number")
+    for column in ("rate", "graded"):
+        if column not in units.columns:
+            raise damaged(units_path, f"has no '{column}' column")
+    rate = pd.to_numeric(units["rate"], errors="coerce").to_numpy(dtype=float)
+    bad = np.flatnonzero(~((rate > 0) & (rate < 1)))
+    if bad.size:
+        raise damaged(units_path, f"has the rate '{units['rate'].astype(str).iloc[bad[0]]}' in row {bad[0] + 1}, "
+                                  "not a probability strictly between 0 and 1")
+    if not units["graded"].isin([0, 1]).all():
+        raise damaged(units_path, "has graded flags other than 0 and 1")
+    listed = {str(row.get("site")) for row in meta.get("sites", []) if isinstance(row, dict)}
+    found = set(units["site"].astype(str))
+    if listed and found != listed:
+        odd = sorted(found ^ listed)[:3]
+        raise damaged(units_path, f"names other sites than {meta_path.name} ({', '.join(map(repr, odd))})")
 
 
 def sha256_of(path: Path | str) -> str:
