@@ -290,7 +290,7 @@ def test_encoding_one_hot_median_imputation_and_indicators():
     frame["books"] = np.arange(40, dtype=float)
     frame.loc[[0, 1], "books"] = np.nan
     frame["constant"] = 5
-    frame["flag"] = [True, False] * 20
+    frame["flag"] = [True, True, False, False] * 10  # not [True, False] * 20: that would copy w (dropped)
     study = _load(frame, id="unit", cost="cost")
     blind = study.blind
     # reference level of lang = the most frequent level, "en"; missing level → lang:missing

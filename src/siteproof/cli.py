@@ -1,8 +1,10 @@
 """The ``siteproof`` command line: a thin typer shell over the Python API.
 
-Every verb parses flags, calls one API function and prints its result. User mistakes surface as a single
-line ``error: <what> — <how to fix>`` on stderr with exit status 2 and no traceback; outputs are published
-only when the whole command succeeded.
+Every verb parses flags, calls one API function and prints its result. The exit status is a contract
+(docs/cli.md): 0 success, 1 a ``--fail-on`` finding, 2 a user mistake (one line ``error: <what> — <how to
+fix>``), 3 an internal error (one line naming the log file with the traceback), 130 Ctrl-C; never a traceback.
+Flags, seeds and the output path are checked while the command line is parsed, before any work; outputs are
+published only when the whole command succeeded.
 """
 
 from __future__ import annotations
@@ -11,7 +13,6 @@ import functools
 import inspect
 import sys
 import typing
-import warnings
 from dataclasses import fields
 from pathlib import Path
 from typing import Annotated, Any, Callable, Optional
@@ -25,7 +26,8 @@ except ImportError:  # pragma: no cover - older typer uses the click package
 
 from . import __version__
 from .benchmark.layout import DEFAULT_HOLDOUT_SHARE
-from .core.errors import SiteproofError, SiteproofWarning
+from .core.console import quiet_stderr
+from .core.errors import SiteproofError, internal_error_line
 from .intake.flags import DataFlags, spec_from_flags, split_list
 
 app = typer.Typer(
@@ -49,6 +51,9 @@ def _print_version(value: bool) -> None:
 def _root(
     version: Annotated[
         bool, typer.Option("--version", help="Print the version and exit.", is_eager=True, callback=_print_version)
+    ] = False,
+    verbose: Annotated[
+        bool, typer.Option("--verbose", help="Also show other libraries' warnings and logs (allowed after any command).")
     ] = False,
 ) -> None:
     """Blind observational analysis of pooled multi-site trials, scored against each site's randomization."""
@@ -117,15 +122,50 @@ def with_data_flags(func: Callable[..., Any]) -> Callable[..., Any]:
 
 
 # ---------------------------------------------------------------------------------------------------------
+# early checks: run while the command line is parsed, before any data is read or any model is fitted
+# ---------------------------------------------------------------------------------------------------------
+FAIL_ON_VALUES = ("different",)
+
+
+def _out_folder(value: Optional[Path]) -> Optional[Path]:
+    """``--out`` of a results folder: not a file, not under a file, writable."""
+    from .core.outputs import check_out_path
+
+    return value if value is None else check_out_path(value, "folder")
+
+
+def _out_file(value: Optional[Path]) -> Optional[Path]:
+    """``--out``/``--truth`` of a single file: not a folder, its folder writable."""
+    from .core.outputs import check_out_path
+
+    return value if value is None else check_out_path(value, "file")
+
+
+def _fail_on(value: Optional[str]) -> Optional[str]:
+    """``--fail-on`` names a verdict it can act on."""
+    if value is not None and value not in FAIL_ON_VALUES:
+        raise SiteproofError(f"--fail-on {value} is not supported", "use --fail-on different")
+    return value
+
+
+def _seed(value: Optional[int]) -> Optional[int]:
+    """``--seed`` in 0 ≤ seed < 2³² (what every random generator used accepts)."""
+    from .intake.flags import check_seed
+
+    return value if value is None else check_seed(value)
+
+
+# ---------------------------------------------------------------------------------------------------------
 # options shared by several verbs
 # ---------------------------------------------------------------------------------------------------------
-OutOpt = Annotated[Path, typer.Option("--out", help="Output folder.")]
-ForceOpt = Annotated[bool, typer.Option("--force", help="Overwrite earlier results in the output folder.")]
+OutOpt = Annotated[Path, typer.Option("--out", help="Output folder.", callback=_out_folder)]
+ForceOpt = Annotated[bool, typer.Option("--force", help="Replace the earlier results in the output folder (the whole folder).")]
 FoldsOpt = Annotated[int, typer.Option("--folds", help="Cross-fitting folds K.")]
 ModelsOpt = Annotated[str, typer.Option("--models", help="Effect models by key: constant,s,t,x,r,dr.")]
 TransportOpt = Annotated[bool, typer.Option("--transport", help="Also run leave-one-site-out transport.")]
 WorkersOpt = Annotated[int, typer.Option("--workers", help="Local processes for transport.")]
-FailOnOpt = Annotated[Optional[str], typer.Option("--fail-on", help="Exit 1 when any claim gets this verdict ('different').")]
+FailOnOpt = Annotated[Optional[str], typer.Option("--fail-on", help="Exit 1 when any claim gets this verdict ('different').", callback=_fail_on)]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Random seed, 0 ≤ seed < 2³² (same seed, same output).", callback=_seed)]
 
 
 def _blind_config(seed: int, folds: int, models: str):
@@ -152,13 +192,21 @@ def _print_scorecard(scorecard, out_dir: Path) -> None:
         console.print(f"report:    {out_dir / 'report.html'}")
 
 
+def _refuse_existing_files(paths: list[Optional[Path]], force: bool) -> None:
+    """Refuse to overwrite an existing file unless ``--force``; refuse writing two outputs to one path."""
+    given = [Path(p) for p in paths if p is not None]
+    if len({p.absolute() for p in given}) < len(given):
+        raise SiteproofError("--out and --truth name the same file", "give them different paths")
+    for path in given:
+        if path.exists() and not force:
+            raise SiteproofError(f"{path} already exists", "choose another path or add --force to overwrite it")
+
+
 def _exit_for(scorecard, fail_on: Optional[str]) -> None:
     from .unmask.scoring import any_different
 
     if fail_on is None:
         return
-    if fail_on != "different":
-        raise SiteproofError(f"--fail-on {fail_on} is not supported", "use --fail-on different")
     if any_different(scorecard):
         raise typer.Exit(1)
 
@@ -168,7 +216,7 @@ def _exit_for(scorecard, fail_on: Optional[str]) -> None:
 # ---------------------------------------------------------------------------------------------------------
 @app.command()
 def demo(
-    out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("siteproof-demo"),
+    out: Annotated[Path, typer.Option("--out", help="Output folder.", callback=_out_folder)] = Path("siteproof-demo"),
     force: ForceOpt = False,
 ) -> None:
     """Run the whole job on the shipped library-coaching demo and on its hidden-branch-effect variant."""
@@ -187,12 +235,14 @@ def demo(
 @app.command()
 def simulate(
     design: Annotated[str, typer.Argument(help="A shipped design name or a design TOML file.")],
-    out: Annotated[Path, typer.Option("--out", help="Data file to write (.csv or .parquet).")],
+    out: Annotated[Path, typer.Option("--out", help="Data file to write (.csv or .parquet).", callback=_out_file)],
     n: Annotated[Optional[int], typer.Option("--n", help="Number of units (default: the design's).")] = None,
-    seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 0,
-    truth: Annotated[Optional[Path], typer.Option("--truth", help="Also write each unit's true effect here.")] = None,
+    seed: SeedOpt = 0,
+    truth: Annotated[Optional[Path], typer.Option("--truth", help="Also write each unit's true effect here.", callback=_out_file)] = None,
+    force: Annotated[bool, typer.Option("--force", help="Overwrite existing files.")] = False,
 ) -> None:
     """Simulate a pooled multi-site trial with known truth from a synthetic_sites design."""
+    _refuse_existing_files([out, truth], force)
     from .core.console import console
     from .simulation.simulate import simulate as simulate_trial
     from .simulation.simulate import write_simulation
@@ -289,7 +339,7 @@ def report(
 @with_data_flags
 def seal(
     flags: DataFlags,
-    out: Annotated[Path, typer.Option("--out", help="Benchmark folder (public/ and key/ are written inside).")],
+    out: Annotated[Path, typer.Option("--out", help="Benchmark folder (public/ and key/ are written inside).", callback=_out_folder)],
     holdout_share: Annotated[float, typer.Option("--holdout-share", help="Share of units whose outcome and treatment are blanked; only they are graded (0 = grade every published unit, in-sample).")] = DEFAULT_HOLDOUT_SHARE,
     secret_file: Annotated[Optional[Path], typer.Option("--secret-file", help="Reuse the sealing secret of an earlier seal (its key/secret.txt) to reproduce it byte for byte.", show_default=False)] = None,
     accept_row_order: Annotated[bool, typer.Option("--accept-row-order", help="Seal although the source file's row order predicts the site (the public rows are shuffled with a secret).")] = False,
@@ -337,7 +387,7 @@ def study(
     n: Annotated[Optional[int], typer.Option("--n", help="Units per replicate (default: the design's).")] = None,
     workers: Annotated[int, typer.Option("--workers", help="Local processes or LocalCluster workers.")] = 1,
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", help="'local' (a dask.distributed LocalCluster) or a scheduler address tcp://HOST:PORT; default: local processes.")] = None,
-    seed: Annotated[int, typer.Option("--seed", help="Study seed (same seed, same replicates.csv).")] = 0,
+    seed: Annotated[int, typer.Option("--seed", help="Study seed, 0 ≤ seed < 2³² (same seed, same replicates.csv).", callback=_seed)] = 0,
 ) -> None:
     """Monte Carlo design study: simulate, run blind + unmask, record bias, coverage and verdicts; resumable."""
     from .core.console import console, progress_bar
@@ -347,7 +397,9 @@ def study(
                        progress=progress_bar)
     console.print(
         f"design '{result.design}', n = {result.n}, seed {result.seed}: {result.replicates} replicates "
-        f"({result.ran} run now, {result.reused} kept from an earlier run) in {result.seconds:.0f} s; "
+        f"({result.ran} run now, {result.reused} kept from an earlier run"
+        + (f", {len(result.recomputed)} damaged or foreign parts recomputed" if result.recomputed else "")
+        + f") in {result.seconds:.0f} s; "
         f"population ATE {result.population_ate:.3f}"
     )
     console.print(f"replicates: {Path(out) / 'replicates.csv'}   summary: {Path(out) / 'summary.csv'}, "
@@ -368,7 +420,7 @@ def confound(
     trial_rate: Annotated[Optional[float], typer.Option("--trial-rate", help="The trial's assignment probability (default: the realized treated share).")] = None,
     treated_value: Annotated[Optional[str], typer.Option("--treated-value", help=_DATA_HELP["treated_value"])] = None,
     encoding: Annotated[Optional[str], typer.Option("--encoding", help=_DATA_HELP["encoding"])] = None,
-    seed: Annotated[int, typer.Option("--seed", help="Seed of the cells' score folds and of the draw.")] = 0,
+    seed: Annotated[int, typer.Option("--seed", help="Seed of the cells' score folds and of the draw, 0 ≤ seed < 2³².", callback=_seed)] = 0,
     force: ForceOpt = False,
 ) -> None:
     """Draw a confounded subsample of a randomized trial with known per-cell rates → data.csv, study.toml, truth.json."""
@@ -422,47 +474,68 @@ def sets(
 
 
 # ---------------------------------------------------------------------------------------------------------
-# entry point: one-line errors, exit 2, no traceback
+# entry point: the exit-status contract (docs/cli.md)
 # ---------------------------------------------------------------------------------------------------------
+EXIT_OK, EXIT_FINDING, EXIT_USER, EXIT_INTERNAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+VERBOSE_FLAG = "--verbose"
+
+
 def _usage_line(exc: click.exceptions.UsageError) -> str:
     command = exc.ctx.command_path if exc.ctx is not None else "siteproof"
-    return f"error: {exc.format_message()} — see `{command} --help`"
+    return " ".join(f"error: {exc.format_message()} — see `{command} --help`".split())
 
 
 def main(argv: Optional[list[str]] = None) -> int:
-    """Console entry point; returns the exit status (0 ok, 1 `--fail-on` triggered, 2 user error)."""
-    command = typer.main.get_command(app)
-    with warnings.catch_warnings():
-        warnings.simplefilter("always", SiteproofWarning)
-        warnings.showwarning = _show_warning  # restored when the block ends
-        return _invoke(command, argv)
+    """Console entry point; returns the exit status (docs/cli.md).
+
+    0 success; 1 ``--fail-on`` found a claim with that verdict; 2 a user mistake (one line ``error: <what> —
+    <how to fix>``); 3 an internal error (one line naming the log file that holds the traceback); 130
+    interrupted (Ctrl-C).  Warnings are collected and printed once at the end, after the error line;
+    other libraries' warnings and log messages appear only with ``--verbose``.
+    """
+    args = list(sys.argv[1:] if argv is None else argv)
+    verbose = VERBOSE_FLAG in args
+    args = [arg for arg in args if arg != VERBOSE_FLAG]
+    with quiet_stderr(verbose) as collected:
+        code, line = _invoke(typer.main.get_command(app), args)
+    if line:
+        print(line, file=sys.stderr)
+    if code != EXIT_INTERRUPTED:  # Ctrl-C: the one line only
+        for message in collected.lines():
+            print(message, file=sys.stderr)
+    return code
 
 
-def _invoke(command: click.Command, argv: Optional[list[str]]) -> int:
-    """Run the click command, turning user mistakes into one line on stderr and an exit status."""
+def _invoke(command: click.Command, args: list[str]) -> tuple[int, str]:
+    """Run the click command; map every outcome to (exit status, the one line to print on stderr or "")."""
     try:
-        result = command.main(args=argv, prog_name="siteproof", standalone_mode=False)
+        with command.make_context("siteproof", args) as ctx:
+            result = command.invoke(ctx)
     except click.exceptions.NoArgsIsHelpError as exc:
         print(exc.ctx.get_help() if exc.ctx is not None else exc.format_message())
-        return 2
+        return EXIT_USER, ""
     except SiteproofError as exc:
-        print(exc.one_line(), file=sys.stderr)
-        return 2
+        return EXIT_USER, exc.one_line()
     except click.exceptions.UsageError as exc:
-        print(" ".join(_usage_line(exc).split()), file=sys.stderr)
-        return 2
+        return EXIT_USER, _usage_line(exc)
+    except click.ClickException as exc:
+        return EXIT_USER, " ".join(f"error: {exc.format_message()} — see `siteproof --help`".split())
     except typer.Exit as exc:
-        return int(exc.exit_code)
-    except typer.Abort:
-        print("error: interrupted — rerun the command; no partial outputs were kept", file=sys.stderr)
-        return 130
-    return int(result or 0)
+        return int(exc.exit_code), ""
+    except (KeyboardInterrupt, typer.Abort):
+        return EXIT_INTERRUPTED, _interrupted_line(args)
+    except BrokenPipeError:
+        return EXIT_OK, ""
+    except Exception as exc:  # anything else is a bug in siteproof: one line, traceback in a log file
+        return EXIT_INTERNAL, internal_error_line(exc, args)
+    return int(result or EXIT_OK), ""
 
 
-def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:  # noqa: ANN001
-    """Print siteproof warnings as one line each on stderr; other libraries' warnings stay quiet."""
-    if issubclass(category, SiteproofWarning):
-        print(f"warning: {message}", file=sys.stderr)
+def _interrupted_line(args: list[str]) -> str:
+    """What Ctrl-C left: nothing, or (for ``study``) the replicates that had finished."""
+    if args and args[0] == "study":
+        return "interrupted — finished replicates are kept; rerun the same command to resume"
+    return "interrupted — nothing was written"
 
 
 def entry() -> None:

@@ -7,6 +7,7 @@ stage succeeded (:class:`~siteproof.core.outputs.StagedOutput`), so an error nev
 
 from __future__ import annotations
 
+import shutil
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -14,7 +15,7 @@ from typing import Callable
 import pandas as pd
 
 from .blind.analysis import BlindConfig, run_blind
-from .blind.claims import Claims, read_claims, write_claims
+from .blind.claims import CLAIMS_FILE, UNITS_FILE, Claims, read_claims, write_claims
 from .core.results import ResultsMixin
 from .core.outputs import StagedOutput, atomic_write_json, atomic_write_text, check_out_dir
 from .reporting.report import write_report
@@ -74,6 +75,9 @@ def unmask_stage(
         study, claims, margin=_margin(spec, margin), seed=spec.seed, transport=transport, workers=workers
     )
     with StagedOutput(out_dir, force) as staged:
+        if Path(claims_dir).resolve() == Path(out_dir).resolve():  # the new folder keeps the claims it scores
+            for name in (CLAIMS_FILE, UNITS_FILE):
+                shutil.copy2(Path(claims_dir) / name, staged / name)
         _write_scorecard(staged, claims, scorecard, report)
     return PipelineResult(study, claims, scorecard, Path(out_dir))
 
@@ -139,20 +143,26 @@ def run_demo(
 ) -> list[PipelineResult]:
     """The shipped demo: the library-branch coaching trial, then its hidden-branch-effect variant.
 
-    A folder that an earlier demo wrote (it holds the marker file) is overwritten without ``force``.
+    The whole demo folder (data, claims, scorecards, reports of both designs) is staged and published at
+    once; a folder that an earlier demo wrote (it holds the marker file) is replaced without ``force``.
     """
     out = Path(out_dir)
     force = force or (out / DEMO_MARKER).exists()
-    for design in DEMO_DESIGNS:
-        check_out_dir(out / design, force)
-    out.mkdir(parents=True, exist_ok=True)
-    atomic_write_text(out / DEMO_MARKER, "written by `siteproof demo`; rerunning the demo overwrites this folder\n")
     results = []
-    for design in DEMO_DESIGNS:
-        folder = out / design
-        folder.mkdir(parents=True, exist_ok=True)
-        spec = write_demo_data(design, folder)
-        results.append(run_pipeline(spec, folder, config, force=True, progress=progress))
+    with StagedOutput(out, force) as staged:
+        atomic_write_text(staged / DEMO_MARKER,
+                          "written by `siteproof demo`; rerunning the demo replaces this folder\n")
+        for design in DEMO_DESIGNS:
+            folder = staged / design
+            folder.mkdir()
+            spec = write_demo_data(design, folder)
+            result = run_pipeline(spec, None, config, progress=progress)
+            write_claims(result.claims, folder)
+            _write_scorecard(folder, result.claims, result.scorecard, True)
+            results.append(result)
+    for result, design in zip(results, DEMO_DESIGNS):
+        result.study.spec.data = out / design / f"{design}.csv"
+        result.out_dir = out / design
     return results
 
 

@@ -34,6 +34,7 @@ import pandas as pd
 from ..core.errors import SiteproofError, warn
 from ..core.estimates import Estimate
 from ..core.outputs import StagedOutput, atomic_write_bytes, atomic_write_text
+from ..intake.roles import check_columns
 from ..intake.sitetrials import DesignATE, design_ate
 from ..intake.study import Study, StudySpec, load_study, read_table
 from .key import fit_key_units, key_metadata, write_key
@@ -105,6 +106,7 @@ def seal_benchmark(
     out = Path(out_dir)
     _check_bench_dir(out, force)
     frame = read_table(spec.data, spec.encoding)
+    check_columns(spec, frame)  # named columns, nested values and huge magnitudes, before the audit fits models
     audit = _audit(frame, spec, accept_row_order)
     require_no_leaks(audit)
     study = load_study(spec, frame=frame)

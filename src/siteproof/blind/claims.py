@@ -167,4 +167,26 @@ def read_claims(path: Path | str) -> Claims:
     except (OSError, ValueError) as exc:
         raise SiteproofError(f"cannot read the claims in {folder}: {exc}", "rerun `siteproof blind`") from exc
     _check_schema(record, str(claims_path))
+    _check_sections(record, str(claims_path))
     return Claims.from_dict(record, units)
+
+
+def _check_sections(record: dict[str, Any], where: str) -> None:
+    """Refuse a damaged claims file: ``data`` must be an object, ``ate``/``cate``/``rules`` lists of objects,
+    and every ATE claim must name its estimator and give numbers (or null) for its estimate and SE."""
+    def damaged(what: str) -> SiteproofError:
+        return SiteproofError(f"{where} is damaged: {what}", "rerun `siteproof blind` to write it again")
+
+    if not isinstance(record.get("data"), dict):
+        raise damaged("'data' is not an object")
+    for section in ("ate", "cate", "rules"):
+        items = record.get(section, [])
+        if not isinstance(items, list) or not all(isinstance(item, dict) for item in items):
+            raise damaged(f"'{section}' is not a list of claims")
+    for claim in record.get("ate", []):
+        if not isinstance(claim.get("estimator"), str):
+            raise damaged("an ATE claim has no estimator name")
+        for key in ("estimate", "se"):
+            value = claim.get(key)
+            if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
+                raise damaged(f"the {key} of ATE claim '{claim['estimator']}' is {value!r}, not a number")

@@ -2,13 +2,18 @@
 
 Estimation modules never print; they accept an optional ``progress`` callback.  The CLI and ``demo`` build
 their screens from result objects with the helpers here.  When stdout is not a terminal (piped, CI), the
-progress bar is silent.
+progress bar is silent.  While the command line runs, :func:`quiet_stderr` collects warnings so that
+they are printed once, after the error line; other libraries' warnings and logs appear only with
+``--verbose``.
 """
 
 from __future__ import annotations
 
+import logging
 import sys
+import warnings
 from contextlib import contextmanager
+from dataclasses import dataclass, field
 from typing import Iterator, Protocol
 
 from rich.console import Console
@@ -55,3 +60,66 @@ def progress_bar(description: str, total: int, enabled: bool | None = None) -> I
             bar.update(task, advance=1, label=label)
 
         yield tick
+
+
+# ----------------------------------------------------------------------------------------------------------
+# a quiet stderr: warnings collected and printed once at the end; library noise only with --verbose
+# ----------------------------------------------------------------------------------------------------------
+_STATE = {"verbose": True}  # Python callers see every library message; the CLI turns this off
+
+
+def library_noise_shown() -> bool:
+    """False while the command line runs without ``--verbose``: library logs and warnings are held back."""
+    return _STATE["verbose"]
+
+
+@dataclass
+class Collected:
+    """The warnings a command raised: siteproof's own (always shown) and other libraries' (``--verbose``)."""
+
+    verbose: bool
+    own: list[str] = field(default_factory=list)
+    library: list[str] = field(default_factory=list)
+
+    def lines(self) -> list[str]:
+        """Each distinct warning once, in the order raised: ``warning: …`` (and ``note: …`` with --verbose)."""
+        own = [f"warning: {' '.join(text.split())}" for text in dict.fromkeys(self.own)]
+        library = [f"note: {' '.join(text.split())}" for text in dict.fromkeys(self.library)] if self.verbose else []
+        return own + library
+
+
+class _LogCollector(logging.Handler):
+    """A logging handler that keeps the formatted records (shown only with --verbose)."""
+
+    def __init__(self, sink: list[str]) -> None:
+        super().__init__(logging.WARNING)
+        self.sink = sink
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.sink.append(f"{record.name}: {record.getMessage()}")
+
+
+@contextmanager
+def quiet_stderr(verbose: bool) -> Iterator[Collected]:
+    """Collect warnings (siteproof's and other libraries') and root-logger records for printing at the end."""
+    from .errors import SiteproofWarning
+
+    collected = Collected(verbose)
+    handler = _LogCollector(collected.library)
+    root = logging.getLogger()
+    previous = _STATE["verbose"]
+
+    def show(message, category, filename, lineno, file=None, line=None) -> None:  # noqa: ANN001
+        sink = collected.own if issubclass(category, SiteproofWarning) else collected.library
+        sink.append(str(message) if sink is collected.own else f"{category.__name__}: {message}")
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", SiteproofWarning)
+        warnings.showwarning = show  # restored when the block ends
+        root.addHandler(handler)
+        _STATE["verbose"] = verbose
+        try:
+            yield collected
+        finally:
+            _STATE["verbose"] = previous
+            root.removeHandler(handler)

@@ -1,9 +1,11 @@
 """Covariate screens and encoding into the blind feature matrix.
 
-Numeric columns are kept with median imputation and a ``<col>:missing`` indicator; text, boolean and
-categorical columns are one-hot encoded against their most frequent level, with a ``<col>:missing``
-indicator; constant feature columns are dropped.  Screens drop covariates that copy the site (every value
-occurs in one site only) and refuse undeclared identifiers and numbers mixed with stray text.
+Numeric columns are kept with median imputation and a ``<col>:missing`` indicator; dates enter as days since
+their earliest value; text, boolean and categorical columns are one-hot encoded against their most frequent
+level, with a ``<col>:missing`` indicator; constant feature columns are dropped.  Screens drop covariates
+that copy the outcome or the treatment (each determines the other, or a threshold separates the arms) and
+covariates that copy the site (every value occurs in one site only), and refuse undeclared identifiers and
+numbers mixed with stray text.
 """
 
 from __future__ import annotations
@@ -13,19 +15,18 @@ import pandas as pd
 
 from .sitetrials import natural_key
 from .spec import StudySpec
-from .values import as_float, examples, is_numeric, parses_as_number, text_labels
+from .values import as_float, days_since_earliest, examples, is_datetime, is_numeric, parses_as_number, text_labels
 from ..core.errors import SiteproofError
 
 ID_UNIQUE_SHARE = 0.9
 ID_MIN_VALUES = 10
+SEPARATION_MIN_ARM = 10
 
 
 def _values(series: pd.Series) -> tuple[np.ndarray, bool]:
-    """(values, numeric?) — float64 with NaN (±inf → NaN) or object labels with None."""
+    """(values, numeric?) — float64 with NaN for missing (±inf kept, for the note) or object labels with None."""
     if is_numeric(series):
-        values = as_float(series)
-        values[~np.isfinite(values)] = np.nan
-        return values, True
+        return as_float(series), True
     return text_labels(series), False
 
 
@@ -68,18 +69,91 @@ def _copies_site(values: np.ndarray, numeric: bool, site: np.ndarray) -> bool:
     return bool((pairs.groupby("v")["s"].nunique() == 1).all())
 
 
+def _function_of(values: np.ndarray, numeric: bool, target: np.ndarray, target_levels: int) -> bool:
+    """True when the covariate and ``target`` (outcome or treatment, numeric, ``target_levels`` distinct
+    values) determine each other in the rows where the covariate is present.
+
+    Either the target is constant within each level of a covariate whose values repeat (at most half as many
+    levels as rows: a copy, a relabelling, or a perfect predictor), or a numeric covariate with as many
+    levels as the target is a strictly monotone function of it (a copy, a rescaling, a log, …).  A strictly
+    monotone function with few levels is a relabelling, so the second test is needed only for many levels.
+    """
+    present = _present(values, numeric)
+    v, t = values[present], target[present]
+    if v.size < 2 or t.min() == t.max():
+        return False
+    levels = pd.unique(v).size
+    if levels < 2:
+        return False
+    if levels <= v.size / 2:
+        return bool((pd.DataFrame({"v": v, "t": t}).groupby("v")["t"].nunique() == 1).all())
+    if not numeric or levels != target_levels:
+        return False
+    order = np.argsort(t, kind="stable")
+    t, v = t[order], np.asarray(v, dtype=float)[order]
+    same_t, step = np.diff(t) == 0, np.diff(v)
+    if (step[same_t] != 0).any():  # v varies among units with the same target: not a function of it
+        return False
+    step = step[~same_t]
+    return bool((step > 0).all() or (step < 0).all())
+
+
+def _separates_arms(values: np.ndarray, numeric: bool, w: np.ndarray) -> bool:
+    """True when a threshold on a numeric covariate puts every treated unit on one side and every control on
+    the other (checked with at least :data:`SEPARATION_MIN_ARM` units per arm, where chance separation of a
+    continuous covariate has probability 2 / C(n₁ + n₀, n₁) < 1e-5)."""
+    if not numeric:
+        return False
+    present = _present(values, numeric)
+    treated, control = values[present & (w == 1)], values[present & (w == 0)]
+    if min(treated.size, control.size) < SEPARATION_MIN_ARM:
+        return False
+    return bool(treated.min() > control.max() or treated.max() < control.min())
+
+
+def _copies_design(name: str, values: np.ndarray, numeric: bool, y: tuple[np.ndarray, int], w: np.ndarray,
+                   spec: StudySpec) -> str:
+    """A warning when the covariate copies the outcome (``y`` = values and their number of distinct values)
+    or the treatment ``w`` (it is then dropped), else ""."""
+    if _function_of(values, numeric, *y):
+        return (f"covariate '{name}' is the outcome '{spec.outcome}' in another form (each determines the other), "
+                "so it would hand the analysis the answer; it was dropped")
+    if _function_of(values, numeric, w, 2) or _separates_arms(values, numeric, w):
+        return (f"covariate '{name}' determines the treatment '{spec.treatment}' exactly (no unit has the other "
+                "arm at its value), so no comparison is possible within it; it was dropped")
+    return ""
+
+
 def screen_covariates(
     frame: pd.DataFrame, names: list[str], site: np.ndarray, spec: StudySpec
 ) -> tuple[dict[str, tuple[np.ndarray, bool]], list[str]]:
-    """Values of the covariates that survive the site-copy screen, and the warnings raised on the way."""
+    """Values of the covariates that survive the screens, and the warnings raised on the way.
+
+    Dates become days since their earliest value; covariates that copy the outcome or the treatment
+    (:func:`_copies_design`) are dropped; covariates that copy the site are dropped unless kept.
+    """
     kept: dict[str, tuple[np.ndarray, bool]] = {}
     notes: list[str] = []
+    outcome = as_float(frame[spec.outcome])
+    y = (outcome, pd.unique(outcome).size)
+    arms = text_labels(frame[spec.treatment])
+    w = (arms == arms[0]).astype(float)  # which arm is 1 does not matter to the screens
     for name in names:
-        values, numeric = _values(frame[name])
+        if is_datetime(frame[name]):
+            values, earliest = days_since_earliest(frame[name])
+            numeric = True
+            notes.append(f"covariate '{name}' holds dates; it enters as days since its earliest value ({earliest})")
+        else:
+            values, numeric = _values(frame[name])
         if not numeric:
             _check_text_column(name, values)
-        if numeric and np.isinf(as_float(frame[name])).any():
+        if numeric and np.isinf(values).any():
             notes.append(f"covariate '{name}' has infinite values; they are treated as missing")
+            values = np.where(np.isinf(values), np.nan, values)
+        copy_note = _copies_design(name, values, numeric, y, w, spec)
+        if copy_note:
+            notes.append(copy_note)
+            continue
         if _copies_site(values, numeric, site):
             if name not in spec.keep_columns:
                 notes.append(

@@ -2,9 +2,9 @@
 
 The flags shared by ``run``, ``blind``, ``unmask`` and ``seal`` (``DATA --outcome --treatment --site ...``,
 or ``--study FILE.toml`` whose keys the flags override) are packed into :class:`DataFlags`.
-:func:`check_paths` refuses a missing data or study file and an output folder that cannot exist using
-:mod:`pathlib` only, so these mistakes are reported before the analysis libraries are imported;
-:func:`spec_from_flags` then builds the study specification.
+:func:`check_paths` refuses a missing data or study file and an output folder that cannot exist or cannot be
+written using the file system only, so these mistakes are reported before the analysis libraries are
+imported; :func:`spec_from_flags` then builds the study specification and checks its seed and margin.
 """
 
 from __future__ import annotations
@@ -19,6 +19,18 @@ if TYPE_CHECKING:
     from .study import StudySpec
 
 REQUIRED = (("data", "DATA"), ("outcome", "--outcome"), ("treatment", "--treatment"), ("site", "--site"))
+#: seeds must lie in [0, 2³²): the range numpy's legacy generators and scikit-learn's random_state accept
+SEED_BOUND = 2**32
+
+
+def check_seed(seed: Any, flag: str = "--seed") -> int:
+    """Refuse a seed that is not a whole number in 0 ≤ seed < 2³²; return it as an int."""
+    numpy_integer = type(seed).__module__ == "numpy" and type(seed).__name__.startswith(("int", "uint"))
+    whole = (isinstance(seed, int) and not isinstance(seed, bool)) or numpy_integer
+    if not whole or not 0 <= int(seed) < SEED_BOUND:
+        raise SiteproofError(f"the seed {seed!r} is not a whole number in 0 … {SEED_BOUND - 1}",
+                             f"give {flag} a whole number ≥ 0 and < 2³², e.g. 2026")
+    return int(seed)
 
 
 @dataclass
@@ -75,16 +87,10 @@ def _check_file(path: Path, label: str, fix: str) -> None:
 
 
 def _check_out(out: Path) -> None:
-    """The output folder exists as a folder or can be created (no existing file on its path)."""
-    if out.exists() and not out.is_dir():
-        raise SiteproofError(f"output path {out} is a file, not a folder", "name a folder with --out")
-    for parent in out.parents:
-        if parent.exists():
-            if not parent.is_dir():
-                raise SiteproofError(
-                    f"output path {out} lies under {parent}, which is a file", "name a folder with --out"
-                )
-            return
+    """The output folder exists as a folder or can be created, and can be written."""
+    from ..core.outputs import check_out_path
+
+    check_out_path(out, "folder")
 
 
 def spec_from_flags(flags: DataFlags, out: Optional[Path] = None) -> StudySpec:
@@ -109,11 +115,14 @@ def spec_from_flags(flags: DataFlags, out: Optional[Path] = None) -> StudySpec:
                     f"{flag} is missing",
                     f"give {flag} (see `siteproof run --help`) or describe the study with --study FILE.toml",
                 )
+    if flags.seed is not None:
+        check_seed(flags.seed)
     check_paths(flags, out)
+    from .spec import check_spec
     from .study import StudySpec, load_spec_toml, parse_rates
 
     if "rates" in given:
         given["rates"] = parse_rates(given["rates"])
-    if flags.study is not None:
-        return load_spec_toml(flags.study, overrides=given)
-    return StudySpec(**given)
+    spec = load_spec_toml(flags.study, overrides=given) if flags.study is not None else StudySpec(**given)
+    check_spec(spec)
+    return spec

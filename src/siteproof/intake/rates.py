@@ -12,12 +12,13 @@ import math
 import numpy as np
 import pandas as pd
 
-from .sitetrials import natural_key, rate_test, site_order
+from .sitetrials import MIN_PER_ARM, natural_key, rate_test, site_order
 from .spec import StudySpec
 from .values import closest, examples
 from ..core.errors import SiteproofError
 
 RATE_WARNING_P = 0.001
+NAMED_SITES = 5
 
 
 def _cell_table(site: np.ndarray, stratum: np.ndarray | None, w: np.ndarray) -> pd.DataFrame:
@@ -115,6 +116,8 @@ def attach_rates(
             f"{where}: {row.n_treated} of {row.n} units treated, but the declared rate is {row.rate_declared:g} "
             f"(exact binomial p = {row.binom_p:.2g}); check the declared rate or the treatment column"
         )
+    if stratum is not None:
+        notes += excluded_cells(cells)
     lookup = dict(zip(zip(cells["site"], cells["stratum"]), cells[rate_column]))
     unit_strata = stratum if stratum is not None else [None] * site.size
     known = np.array([lookup[cell] for cell in zip(site, unit_strata)], dtype=float)
@@ -122,14 +125,41 @@ def attach_rates(
     return known, cells[columns], source, notes
 
 
+def _arm_shortfall(size: int, treated: int) -> str:
+    """Why a group with ``treated`` of ``size`` units treated is excluded ("" when it is not)."""
+    if treated in (0, size):
+        return f"has all {size} units in the {'treated' if treated else 'control'} arm"
+    arm, count = ("treated", treated) if treated < size - treated else ("control", size - treated)
+    return f"has only {count} unit{'s' if count != 1 else ''} in the {arm} arm" if count < MIN_PER_ARM else ""
+
+
+def _exclusion_notes(reasons: dict[str, str], total: int, what: str) -> list[str]:
+    """One line per excluded site/cell up to :data:`NAMED_SITES`, else one summary line naming the first."""
+    if len(reasons) <= NAMED_SITES:
+        return [f"{what} '{label}' {why}; it is excluded from the design-based estimates"
+                for label, why in reasons.items()]
+    shown = ", ".join(list(reasons)[:NAMED_SITES])
+    return [f"{len(reasons)} of {total} {what}s ({shown}, …) are excluded from the design-based estimates: "
+            f"fewer than {MIN_PER_ARM} units in an arm (the scorecard lists them all)"]
+
+
 def one_arm_sites(site: np.ndarray, w: np.ndarray) -> list[str]:
-    """A warning for every site whose units are all in one arm (no design-based estimate there)."""
-    notes = []
+    """Warnings naming every site the design-based estimates exclude (fewer than MIN_PER_ARM units in an arm).
+
+    Up to :data:`NAMED_SITES` sites get a line each ("site 'c' has all 20 units in the treated arm …");
+    more are summarised in one line that names the first of them and counts the rest.
+    """
     table = pd.DataFrame({"site": site, "w": w}).groupby("site")["w"].agg(["size", "sum"])
-    for label in site_order(table.index):
-        size, treated = int(table.at[label, "size"]), int(table.at[label, "sum"])
-        if treated in (0, size):
-            arm = "treated" if treated else "control"
-            notes.append(f"site '{label}' has all {size} units in the {arm} arm; it is excluded from the "
-                         "design-based estimates")
-    return notes
+    reasons = {label: _arm_shortfall(int(table.at[label, "size"]), int(table.at[label, "sum"]))
+               for label in site_order(table.index)}
+    return _exclusion_notes({k: v for k, v in reasons.items() if v}, len(table), "site")
+
+
+def excluded_cells(cells: pd.DataFrame) -> list[str]:
+    """With strata: warnings naming the site × stratum cells that are excluded although their site as a whole
+    has at least MIN_PER_ARM units in each arm (whole sites are named by :func:`one_arm_sites`)."""
+    per_site = cells.groupby("site")[["n_treated", "n_control"]].sum()
+    whole = {label for label, row in per_site.iterrows() if min(row["n_treated"], row["n_control"]) < MIN_PER_ARM}
+    reasons = {f"{row.site}:{row.stratum}": _arm_shortfall(int(row.n), int(row.n_treated))
+               for row in cells.itertuples() if row.site not in whole}
+    return _exclusion_notes({k: v for k, v in reasons.items() if v}, len(cells), "cell")

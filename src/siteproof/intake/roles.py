@@ -12,7 +12,9 @@ import pandas as pd
 
 from .sitetrials import MIN_PER_ARM, site_order
 from .spec import FLAG_OF, StudySpec
-from .values import closest, examples, numeric_column, parses_as_number, text_label, text_labels
+from .values import (
+    check_magnitude, closest, examples, is_nested, numeric_column, parses_as_number, text_label, text_labels,
+)
 from ..core.errors import SiteproofError
 
 MIN_UNITS = 20
@@ -62,7 +64,8 @@ def _covariate_names(spec: StudySpec, frame: pd.DataFrame, roles: dict[str, str]
 
 
 def check_columns(spec: StudySpec, frame: pd.DataFrame) -> list[str]:
-    """Every named column exists and plays one role; returns the covariate names."""
+    """Every named column exists and plays one role, none holds nested values, and the numeric ones (outcome,
+    cost, covariates) hold no magnitudes beyond ±1e100; returns the covariate names."""
     _need_column(frame, spec.site, "--site", "site column")
     for role in ("outcome", "treatment", "id", "cost", "stratum"):
         if getattr(spec, role) is not None:
@@ -70,7 +73,26 @@ def check_columns(spec: StudySpec, frame: pd.DataFrame) -> list[str]:
     for key in ("keep_columns", "drop_columns", "site_derived"):
         for name in getattr(spec, key):
             _need_column(frame, name, FLAG_OF[key], "column")
-    return _covariate_names(spec, frame, _role_columns(spec))
+    roles = _role_columns(spec)
+    covariates = _covariate_names(spec, frame, roles)
+    _refuse_nested(frame, [*roles, *covariates])
+    numeric_roles = [(column, role) for column, role in roles.items() if role in ("outcome", "cost")]
+    for column, role in numeric_roles + [(column, "covariate") for column in covariates]:
+        check_magnitude(frame[column], column, role)
+    return covariates
+
+
+def _refuse_nested(frame: pd.DataFrame, columns: list[str]) -> None:
+    """Refuse list, struct and map columns among the columns the analysis uses, naming all of them."""
+    nested = [name for name in columns if is_nested(frame[name])]
+    if nested:
+        names = ", ".join(f"'{name}'" for name in nested)
+        raise SiteproofError(
+            f"column{'s' if len(nested) > 1 else ''} {names} hold{'' if len(nested) > 1 else 's'} lists or records "
+            "(nested Parquet/Arrow values), not one value per unit",
+            f"flatten {'them' if len(nested) > 1 else 'it'} into plain columns, or leave "
+            f"{'them' if len(nested) > 1 else 'it'} out with --drop-column {nested[0]}",
+        )
 
 
 def _match_treated(wanted: str, values: list[str], name: str) -> str:

@@ -15,9 +15,9 @@ from fractions import Fraction
 from pathlib import Path
 from typing import Any, Mapping
 
-import numpy as np
 import pandas as pd
 
+from .flags import check_seed
 from .values import closest
 from ..core.errors import SiteproofError
 
@@ -234,11 +234,10 @@ def load_spec_toml(path: Path | str, overrides: Mapping[str, Any] | None = None)
 
 
 def check_spec(spec: StudySpec) -> None:
-    """A positive finite margin (if any) and a whole-number seed ≥ 0."""
+    """A positive finite margin (if any) and a whole-number seed in 0 ≤ seed < 2³²."""
     if spec.margin is not None and not (math.isfinite(spec.margin) and spec.margin > 0):
         raise SiteproofError(
             f"the equivalence margin is {spec.margin}", "give --margin a positive number in outcome units"
         )
-    if isinstance(spec.seed, bool) or not isinstance(spec.seed, (int, np.integer)) or spec.seed < 0:
-        raise SiteproofError(f"the seed is {spec.seed!r}", "give --seed a whole number ≥ 0")
+    check_seed(spec.seed, "--seed (or seed in the study file)")
 

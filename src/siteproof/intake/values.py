@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import re
 from typing import Any, Iterable
 
 import numpy as np
@@ -83,3 +84,72 @@ def closest(name: str, options: Iterable[str]) -> str:
     """' (did you mean 'x'?)' when a close match exists."""
     match = difflib.get_close_matches(name, list(options), n=1, cutoff=0.6)
     return f" (did you mean '{match[0]}'?)" if match else ""
+
+
+#: numbers beyond this magnitude are refused: their squares (variances, least squares) overflow float64
+#: (√1.8e308 ≈ 1.3e154) or lose every other value to rounding
+MAX_MAGNITUDE = 1e100
+NESTED_TYPES = (list, tuple, dict, set, np.ndarray)
+
+
+def is_nested(series: pd.Series) -> bool:
+    """True for list, struct or map columns (Parquet/Arrow nested types, or Python containers as values)."""
+    if isinstance(series.dtype, pd.ArrowDtype):
+        import pyarrow as pa
+
+        arrow = series.dtype.pyarrow_dtype
+        return pa.types.is_nested(arrow)
+    if series.dtype != object:
+        return False
+    return any(isinstance(v, NESTED_TYPES) for v in series.dropna().head(1000))
+
+
+ISO_DATE = re.compile(r"\d{4}-\d{2}-\d{2}([ T]\d{2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?")
+
+
+def _iso_text(series: pd.Series) -> bool:
+    """True when every present value is ISO 8601 date text (2024-01-31, 2024-01-31T08:00, …), as dates are
+    written in a CSV file."""
+    present = series.dropna()
+    return bool(len(present)) and all(isinstance(v, str) and ISO_DATE.fullmatch(v.strip()) for v in present)
+
+
+def is_datetime(series: pd.Series) -> bool:
+    """True for date and datetime columns: datetime64 (with or without a time zone), date objects, or text
+    that is all ISO 8601 dates."""
+    if ptypes.is_datetime64_any_dtype(series.dtype):
+        return True
+    if not (series.dtype == object or ptypes.is_string_dtype(series.dtype)) or not series.notna().any():
+        return False
+    if pd.api.types.infer_dtype(series, skipna=True) in ("datetime", "datetime64", "date"):
+        return True
+    return _iso_text(series)
+
+
+def days_since_earliest(series: pd.Series) -> tuple[np.ndarray, str]:
+    """A date column as days since its earliest value (NaN where missing), and that earliest value as text.
+
+    Times are put on UTC first (so mixed time zones compare correctly; differences in days are unchanged)."""
+    text = not ptypes.is_datetime64_any_dtype(series.dtype) and _iso_text(series)
+    stamps = pd.to_datetime(series, errors="coerce", utc=True, format="ISO8601" if text else None)
+    earliest = stamps.min()
+    days = ((stamps - earliest) / pd.Timedelta(days=1)).to_numpy(dtype="float64", na_value=np.nan)
+    return np.array(days, dtype=np.float64), str(earliest.date() if earliest == earliest.normalize() else earliest)
+
+
+def check_magnitude(series: pd.Series, name: str, role: str) -> None:
+    """Refuse a numeric column holding a finite value with |x| > :data:`MAX_MAGNITUDE`, naming the first row
+    (data rows count from 1, the header not included)."""
+    if not is_numeric(series):
+        return
+    values = as_float(series)
+    with np.errstate(invalid="ignore"):
+        huge = np.flatnonzero(np.isfinite(values) & (np.abs(values) > MAX_MAGNITUDE))
+    if huge.size:
+        row = int(huge[0])
+        raise SiteproofError(
+            f"{role} column '{name}' holds {values[row]:g} in data row {row + 1}"
+            + (f" and {huge.size - 1} more value(s)" if huge.size > 1 else "")
+            + f", beyond ±{MAX_MAGNITUDE:g}, too large to compute with",
+            f"rescale '{name}' (e.g. to thousands or a logarithm), or correct or remove those rows",
+        )

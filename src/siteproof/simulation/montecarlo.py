@@ -28,17 +28,20 @@ A *study* draws R independent replicates from a synthetic_sites design (``simula
 
 The ``design_based`` column holds the design-based counterpart the verdict compares with (unmask).
 
-Outputs in the study folder: ``study.json`` (the settings; a rerun with other settings is refused),
-``parts/rep-00042.csv`` (one file per finished replicate, written atomically as soon as it lands, so a killed
-worker never leaves a half row), ``replicates.csv`` (the parts of replicates 0..R−1 in replicate order,
-rebuilt at the end of every run), ``summary.csv`` (:func:`summarize`), ``timings.csv`` (seconds per
-replicate; kept apart so that replicates.csv depends on the seed only) and ``summary.html``
-(``studyreport``).  Rerunning with the same folder resumes: finished replicates are not redone.
+Outputs in the study folder: ``study.json`` (the settings; a rerun with other settings is refused, a damaged
+one is a clear error), ``parts/rep-00042.csv`` + ``parts/rep-00042.json`` (one pair per finished replicate,
+written atomically as soon as it lands; the record carries the replicate's seeds and the SHA-256 of the rows,
+see :mod:`~siteproof.simulation.parts`), ``replicates.csv`` (the verified parts of replicates 0..R−1 in
+replicate order, rebuilt at the end of every run), ``summary.csv`` (:func:`summarize`), ``timings.csv``
+(seconds per replicate; kept apart so that replicates.csv depends on the seed only) and ``summary.html``
+(``studyreport``).  Rerunning with the same folder resumes: intact replicates are not redone; damaged or
+foreign parts are reported and recomputed.
 
 Execution: replicates are independent tasks.  ``workers = 1`` runs them in this process; ``workers > 1`` in
 local processes (``concurrent.futures.ProcessPoolExecutor``, spawn start method, one thread each);
 ``scheduler = "local"`` starts a ``dask.distributed.LocalCluster`` with ``workers`` single-threaded worker
-processes; any other ``scheduler`` is the address of a running Dask scheduler (``tcp://HOST:PORT``).
+processes; any other ``scheduler`` is the address of a running Dask scheduler (``tcp://HOST:PORT``), reached
+before anything is written.
 Results are collected as they complete (``as_completed``).  See docs/montecarlo.md.
 """
 
@@ -47,9 +50,11 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import logging
 import math
 import multiprocessing
 import os
+import signal
 import time
 import warnings
 from collections.abc import Callable, Iterator
@@ -67,25 +72,25 @@ import pandas as pd
 from .. import __version__
 from ..blind.analysis import BlindConfig, run_blind
 from ..blind.evaluation import rank_metric
+from ..core.console import library_noise_shown
 from ..core.errors import SiteproofError, SiteproofWarning
 from ..core.outputs import atomic_write_json, atomic_write_text, check_out_dir
+from ..intake.flags import check_seed
 from ..intake.study import Study, StudySpec, load_study
 from ..unmask.scoring import Scorecard, claim_verdicts, run_unmask
+from .parts import COLUMNS, collect, discard_parts, part_numbers, read_replicates, save_part, verify_parts
 from .scenario import MIN_N, Scenario
 from .simulate import SimulatedTrial, load_design, population_ate, simulate
 from .studysummary import summarize
 
+__all__ = ["COLUMNS", "ReplicateResult", "ReplicateTask", "StudyResult", "finished_replicates", "read_replicates",
+           "replicate_seeds", "run_replicate", "run_study", "true_rank_metric"]
 SCHEMA = "siteproof/montecarlo-study"
 VERSION = 1
 Tick = Callable[[str], None]
 ProgressFactory = Callable[[str, int], AbstractContextManager[Tick]]
 
-#: columns of replicates.csv (one row per replicate × ATE estimator / CATE model / rule)
-COLUMNS = (
-    "replicate", "kind", "name", "estimate", "se", "ci_low", "ci_high", "truth", "truth_sample", "error",
-    "covered", "covered_sample", "design_based", "verdict", "pehe",
-)
-PARTS = "parts"
+SCHEDULER_TIMEOUT = "20s"
 _THREAD_VARIABLES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
 
 
@@ -271,10 +276,10 @@ def _open_folder(out: Path, settings: dict[str, Any]) -> dict[str, Any]:
     check_out_dir(out)
     path = out / "study.json"
     if path.exists():
-        stored = json.loads(path.read_text(encoding="utf-8"))
-        differing = [key for key in settings if stored.get("settings", {}).get(key) != settings[key]]
+        stored = read_study_file(path)
+        differing = [key for key in settings if stored["settings"].get(key) != settings[key]]
         if differing:
-            old = stored.get("settings", {})
+            old = stored["settings"]
             text = ", ".join(f"{k} {_short(old.get(k))} → {_short(settings[k])}" for k in differing)
             raise SiteproofError(
                 f"{out} holds a study with other settings ({text})",
@@ -286,6 +291,32 @@ def _open_folder(out: Path, settings: dict[str, Any]) -> dict[str, Any]:
     return {}
 
 
+def read_study_file(path: Path) -> dict[str, Any]:
+    """study.json of an existing study, checked: a JSON object with its settings, replicate count and
+    population ATE; anything else is a damaged file (a clear error, never a traceback)."""
+    def damaged(reason: str) -> SiteproofError:
+        return SiteproofError(
+            f"{path} is damaged ({reason}), so the study in {path.parent} cannot be resumed",
+            f"restore study.json from a copy, or delete the folder {path.parent} to start the study again",
+        )
+
+    try:
+        stored = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise damaged(" ".join(str(exc).split())[:120]) from None
+    if not isinstance(stored, dict) or stored.get("schema") != SCHEMA:
+        raise damaged(f"not a {SCHEMA} record")
+    if not isinstance(stored.get("settings"), dict):
+        raise damaged("no settings")
+    truth, count = stored.get("population_ate"), stored.get("replicates", 0)
+    if truth is not None and (isinstance(truth, bool) or not isinstance(truth, (int, float))
+                              or not math.isfinite(truth)):
+        raise damaged(f"population_ate is {truth!r}")
+    if isinstance(count, bool) or not isinstance(count, int) or count < 0:
+        raise damaged(f"replicates is {count!r}")
+    return stored
+
+
 def _short(value: Any) -> str:
     """A setting for an error message: fingerprints cut to 10 characters, tables as sorted JSON."""
     if isinstance(value, str) and len(value) == 64:
@@ -293,53 +324,19 @@ def _short(value: Any) -> str:
     return json.dumps(value, sort_keys=True) if isinstance(value, dict) else str(value)
 
 
-def part_path(out: Path, replicate: int) -> Path:
-    """Where replicate r's rows are written: parts/rep-00042.csv."""
-    return out / PARTS / f"rep-{replicate:05d}.csv"
+def _study_seeds(out: Path, count: int) -> list[tuple[int, int, int]] | None:
+    """The replicate seeds of the study in ``out`` (from study.json), None without a readable study.json."""
+    try:
+        seed = json.loads((out / "study.json").read_text(encoding="utf-8"))["settings"]["seed"]
+        return replicate_seeds(int(seed), count)
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
 
 
 def finished_replicates(out: Path | str) -> set[int]:
-    """Replicate numbers whose part file exists (each was written atomically, so each is complete)."""
-    folder = Path(out) / PARTS
-    if not folder.is_dir():
-        return set()
-    return {int(p.stem.split("-")[1]) for p in folder.glob("rep-*.csv")}
-
-
-def _save(out: Path, result: ReplicateResult) -> None:
-    """Timing first, rows last: a part file exists only when the replicate is completely saved."""
-    atomic_write_json(out / PARTS / f"rep-{result.replicate:05d}.json",
-                      {"replicate": result.replicate, "seconds": result.seconds, "worker": result.worker})
-    atomic_write_text(part_path(out, result.replicate), result.rows.to_csv(index=False, lineterminator="\n"))
-
-
-def collect(out: Path | str, replicates: int) -> pd.DataFrame:
-    """Rebuild replicates.csv (and timings.csv) from the parts of replicates 0..R−1, in replicate order.
-
-    The file is the header followed by each part's rows verbatim, so numbers are never re-rounded.
-    """
+    """Replicate numbers whose part is complete and intact (checksum, and the seeds study.json assigns)."""
     out = Path(out)
-    done = sorted(r for r in finished_replicates(out) if r < replicates)
-    header, bodies = None, []
-    for r in done:
-        first, _, body = part_path(out, r).read_text(encoding="utf-8").partition("\n")
-        header = header or first
-        bodies.append(body)
-    text = (header + "\n" + "".join(bodies)) if header else ",".join(COLUMNS) + "\n"
-    atomic_write_text(out / "replicates.csv", text)
-    timings = [json.loads((out / PARTS / f"rep-{r:05d}.json").read_text(encoding="utf-8")) for r in done]
-    atomic_write_text(out / "timings.csv", pd.DataFrame(timings, columns=["replicate", "seconds", "worker"])
-                      .to_csv(index=False, lineterminator="\n"))
-    return read_replicates(out / "replicates.csv")
-
-
-def read_replicates(path: Path | str) -> pd.DataFrame:
-    """replicates.csv as a frame (floats parsed exactly; ``covered`` columns as nullable booleans)."""
-    frame = pd.read_csv(path, keep_default_na=False,
-                        na_values={c: [""] for c in COLUMNS if c not in ("kind", "name", "verdict")})
-    for column in ("covered", "covered_sample"):
-        frame[column] = frame[column].map({True: True, False: False, "True": True, "False": False}).astype("boolean")
-    return frame
+    return verify_parts(out, _study_seeds(out, max(part_numbers(out), default=-1) + 1))[0]
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -370,7 +367,8 @@ def _run_here(tasks: list[ReplicateTask]) -> Iterator[ReplicateResult]:
 
 def _run_processes(tasks: list[ReplicateTask], workers: int) -> Iterator[ReplicateResult]:
     """Local processes (spawn start method); results in completion order."""
-    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=_child_setup, initargs=(not library_noise_shown(),))
     try:
         with _single_threaded_children():
             futures = {pool.submit(run_replicate, task): task.replicate for task in tasks}
@@ -379,8 +377,20 @@ def _run_processes(tasks: list[ReplicateTask], workers: int) -> Iterator[Replica
                 yield future.result()
             except BrokenProcessPool:
                 raise _lost_worker(futures[future]) from None
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+    except BaseException:  # an error or Ctrl-C here or in the caller: stop the running replicates at once
+        for process in list((getattr(pool, "_processes", None) or {}).values()):
+            process.terminate()
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
+
+
+def _child_setup(hide_warnings: bool) -> None:
+    """In a worker process: Ctrl-C is the parent's to handle (no traceback from every child), and library
+    warnings stay quiet unless the user asked for them (``--verbose``)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if hide_warnings:
+        warnings.simplefilter("ignore")
 
 
 def _lost_worker(replicate: int | None, detail: str = "") -> SiteproofError:
@@ -392,8 +402,8 @@ def _lost_worker(replicate: int | None, detail: str = "") -> SiteproofError:
     )
 
 
-def _run_dask(tasks: list[ReplicateTask], workers: int, scheduler: str) -> Iterator[ReplicateResult]:
-    """A LocalCluster (``scheduler = "local"``) or a running scheduler; results in completion order.
+def _run_dask(tasks: list[ReplicateTask], client: Any) -> Iterator[ReplicateResult]:
+    """Tasks on a Dask client (a LocalCluster or a running scheduler); results in completion order.
 
     A task whose worker dies is rescheduled on another worker by Dask itself; it fails only after the
     scheduler's allowed number of worker deaths (``distributed.scheduler.allowed-failures``).
@@ -401,43 +411,69 @@ def _run_dask(tasks: list[ReplicateTask], workers: int, scheduler: str) -> Itera
     from dask.distributed import as_completed
     from distributed.scheduler import KilledWorker
 
-    with _dask_client(workers, scheduler) as client:
-        futures = {client.submit(run_replicate, task, pure=False): task.replicate for task in tasks}
-        try:
-            for future in as_completed(futures):
-                try:
-                    yield future.result()
-                except KilledWorker as exc:
-                    raise _lost_worker(futures[future], f" repeatedly ({exc})") from None
-        finally:
-            client.cancel(list(futures))
+    futures = {client.submit(run_replicate, task, pure=False): task.replicate for task in tasks}
+    try:
+        for future in as_completed(futures):
+            try:
+                yield future.result()
+            except KilledWorker as exc:
+                raise _lost_worker(futures[future], f" repeatedly ({exc})") from None
+    finally:
+        client.cancel(list(futures))
 
 
 @contextmanager
-def _dask_client(workers: int, scheduler: str) -> Iterator[Any]:
-    """A client of a new LocalCluster with single-threaded workers, or of the scheduler at ``scheduler``."""
-    from dask.distributed import Client, LocalCluster
-
-    if scheduler == "local":
-        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster, \
-                Client(cluster) as client:
-            yield client
+def _dask_logs_quiet() -> Iterator[None]:
+    """Without ``--verbose``, Dask's informational logs (here and in the worker processes it starts) are
+    held back: only errors reach stderr."""
+    if library_noise_shown():
+        yield
         return
+    added = "DASK_LOGGING__DISTRIBUTED" not in os.environ
+    if added:
+        os.environ["DASK_LOGGING__DISTRIBUTED"] = "error"
+    logger = logging.getLogger("distributed")
+    level = logger.level
+    logger.setLevel(logging.ERROR)
     try:
-        client = Client(scheduler, timeout="20s")
-    except (OSError, TimeoutError, ValueError) as exc:
-        raise SiteproofError(
-            f"cannot reach a Dask scheduler at {scheduler} ({type(exc).__name__})",
-            "start one with `dask scheduler` and `dask worker ADDRESS`, or use --scheduler local",
-        ) from None
-    with client:
-        yield client
+        yield
+    finally:
+        logger.setLevel(level)
+        if added:
+            os.environ.pop("DASK_LOGGING__DISTRIBUTED", None)
 
 
-def _results(tasks: list[ReplicateTask], workers: int, scheduler: str | None) -> Iterator[ReplicateResult]:
+@contextmanager
+def _dask_client(workers: int, scheduler: str | None) -> Iterator[Any]:
+    """None without a scheduler; a client of a new LocalCluster with single-threaded workers
+    (``"local"``); or a client of the scheduler at ``scheduler`` — connected before anything is written,
+    so an unreachable address leaves no files behind."""
+    if scheduler is None:
+        yield None
+        return
+    with _dask_logs_quiet():
+        from dask.distributed import Client, LocalCluster
+
+        if scheduler == "local":
+            with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                              dashboard_address=":0") as cluster, Client(cluster) as client:
+                yield client
+            return
+        try:
+            client = Client(scheduler, timeout=SCHEDULER_TIMEOUT)
+        except (OSError, TimeoutError, ValueError) as exc:
+            raise SiteproofError(
+                f"cannot reach a Dask scheduler at {scheduler} ({type(exc).__name__})",
+                "start one with `dask scheduler` and `dask worker ADDRESS`, or use --scheduler local",
+            ) from None
+        with client:
+            yield client
+
+
+def _results(tasks: list[ReplicateTask], workers: int, client: Any) -> Iterator[ReplicateResult]:
     """Replicate results from the back end the arguments ask for (Dask, local processes or this process)."""
-    if scheduler is not None:
-        return _run_dask(tasks, workers, scheduler)
+    if client is not None:
+        return _run_dask(tasks, client)
     if workers > 1 and len(tasks) > 1:
         return _run_processes(tasks, workers)
     return _run_here(tasks)
@@ -460,11 +496,13 @@ class StudyResult:
     seconds: float
     population_ate: float
     summary: pd.DataFrame = field(repr=False)
+    recomputed: tuple[int, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {"out_dir": str(self.out_dir), "design": self.design, "n": self.n, "seed": self.seed,
                 "replicates": self.replicates, "ran": self.ran, "reused": self.reused,
-                "seconds": self.seconds, "population_ate": self.population_ate}
+                "seconds": self.seconds, "population_ate": self.population_ate,
+                "recomputed": list(self.recomputed)}
 
 
 def _check_arguments(replicates: int, n: int | None, workers: int, seed: int, scheduler: str | None) -> None:
@@ -478,8 +516,7 @@ def _check_arguments(replicates: int, n: int | None, workers: int, seed: int, sc
         raise SiteproofError(f"--n {n!r} is not a whole number ≥ {MIN_N}", "give e.g. --n 3000 or leave --n out")
     if not whole(workers) or workers < 1:
         raise SiteproofError(f"--workers {workers!r} is not a whole number ≥ 1", "give e.g. --workers 2")
-    if not whole(seed) or seed < 0:
-        raise SiteproofError(f"--seed {seed!r} is not a whole number ≥ 0", "give e.g. --seed 1")
+    check_seed(seed)
     if scheduler is not None and scheduler != "local" and "://" not in scheduler and ":" not in scheduler:
         raise SiteproofError(f"--scheduler {scheduler!r} is neither 'local' nor an address",
                              "use --scheduler local or --scheduler tcp://HOST:PORT")
@@ -517,26 +554,30 @@ def run_study(
     out = Path(out)
     settings = study_settings(design, n, seed, config)
     stored = _open_folder(out, settings)
-    truth = stored.get("population_ate")
-    if truth is None:
-        truth = population_ate(design)
-    atomic_write_json(out / "study.json", {
-        "schema": SCHEMA, "version": VERSION, "siteproof_version": __version__, "settings": settings,
-        "replicates": max(int(replicates), int(stored.get("replicates", 0))), "population_ate": truth,
-        "truth_note": "coverage, bias and RMSE of ATE rows use the population ATE (population_ate: mean τ of "
-                      "200,000 fresh units); covered_sample uses the mean τ of each replicate's own units",
-        "design": design.to_dict(),
-    })
-    seeds = replicate_seeds(seed, replicates)
-    done = finished_replicates(out)
-    tasks = [ReplicateTask(design, n, r, seeds[r], truth, config, site_learner)
-             for r in range(replicates) if r not in done]
-    start = time.perf_counter()
-    with (progress or _quiet)("replicates", len(tasks)) as tick, closing(_results(tasks, workers, scheduler)) as results:
-        for result in results:
-            _save(out, result)
-            tick(f"replicate {result.replicate}")
-    frame = collect(out, replicates)
+    with _dask_client(workers, scheduler) as client:
+        truth = stored.get("population_ate")
+        if truth is None:
+            truth = population_ate(design)
+        atomic_write_json(out / "study.json", {
+            "schema": SCHEMA, "version": VERSION, "siteproof_version": __version__, "settings": settings,
+            "replicates": max(int(replicates), int(stored.get("replicates", 0))), "population_ate": truth,
+            "truth_note": "coverage, bias and RMSE of ATE rows use the population ATE (population_ate: mean τ of "
+                          "200,000 fresh units); covered_sample uses the mean τ of each replicate's own units",
+            "design": design.to_dict(),
+        })
+        seeds = replicate_seeds(seed, replicates)
+        done, bad = verify_parts(out, seeds)
+        discard_parts(out, bad)
+        tasks = [ReplicateTask(design, n, r, seeds[r], truth, config, site_learner)
+                 for r in range(replicates) if r not in done]
+        start = time.perf_counter()
+        with (progress or _quiet)("replicates", len(tasks)) as tick, \
+                closing(_results(tasks, workers, client)) as results:
+            for result in results:
+                save_part(out, result.replicate, result.rows, seeds[result.replicate], result.seconds,
+                          result.worker)
+                tick(f"replicate {result.replicate}")
+    frame = collect(out, replicates, seeds)
     summary = summarize(frame)
     atomic_write_text(out / "summary.csv", summary.to_csv(index=False, lineterminator="\n"))
     if report:
@@ -544,7 +585,7 @@ def run_study(
 
         write_study_report(out, summary, json.loads((out / "study.json").read_text(encoding="utf-8")))
     return StudyResult(out, design.name, n, seed, replicates, len(tasks), replicates - len(tasks),
-                       time.perf_counter() - start, float(truth), summary)
+                       time.perf_counter() - start, float(truth), summary, tuple(sorted(bad)))
 
 
 @contextmanager
