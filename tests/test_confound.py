@@ -292,7 +292,8 @@ def test_command_line(nsw, tmp_path, capsys):
     args = ["confound", str(data), "--outcome", "re78", "--treatment", "treat", "--covariates", ",".join(COVARIATES),
             "--strength", "1", "--seed", "3", "--out", str(tmp_path / "b")]
     assert main(args) == 0
-    assert {p.name for p in (tmp_path / "b").iterdir()} == {"data.csv", "study.toml", "truth.json"}
+    written = {p.name for p in (tmp_path / "b").iterdir() if not p.name.startswith(".")}  # hidden: the folder manifest
+    assert written == {"data.csv", "study.toml", "truth.json"}
     assert main(args) == 2  # refuses to overwrite without --force
     assert "add --force" in capsys.readouterr().err
     assert main(args + ["--force"]) == 0

@@ -22,7 +22,7 @@ from ..core.interpret import DIFFERENT, Z_90, Z_95
 from ..core.outputs import atomic_write_bytes, atomic_write_text
 from . import theme
 from .document import FIGURE_DIR, Document, FigureBlock, Section, Table, Text, Verdict
-from .figures import Interval, _labels_on_y, _height, _pad_x, new_figure, render, styled
+from .figures_base import Interval, height_for, labels_on_y, new_figure, pad_x, render, styled
 from .formatting import fmt, fmt_ci
 
 PAGE_TITLE = "What did it take to recover the trial?"
@@ -32,9 +32,9 @@ LABELLED_BENCHMARKS = 4  # the benchmarks with the largest bounds are named in t
 @styled
 def bias_by_set_figure(rows: Sequence[Interval], verdicts: Sequence[str], margin: float, unit: str) -> Figure:
     """Paired difference blind − design per covariate set with 95 % (thin) and 90 % (thick) CIs and ±δ band."""
-    fig, axes = new_figure(theme.FIG_WIDTH, _height(len(rows), 1.2))
+    fig, axes = new_figure(theme.FIG_WIDTH, height_for(len(rows), 1.2))
     ax = axes[0, 0]
-    y = _labels_on_y(ax, [r.label for r in rows])
+    y = labels_on_y(ax, [r.label for r in rows])
     ax.axvspan(-margin, margin, color=theme.ROLE["band"], alpha=0.14, zorder=0, label="equivalence band ±δ")
     ax.axvline(0.0, color=theme.INK, lw=0.9)
     for row, yy in zip(rows, y):
@@ -50,7 +50,7 @@ def bias_by_set_figure(rows: Sequence[Interval], verdicts: Sequence[str], margin
                     fontsize=theme.BASE_FONT - 0.5, fontweight="bold" if text == DIFFERENT else "normal")
     ax.set_xlabel(f"bias: blind − design, paired ({unit})")
     ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.25), ncols=2)
-    _pad_x(ax, [v for r in rows for v in (r.low, r.high)] + [-margin, margin])
+    pad_x(ax, [v for r in rows for v in (r.low, r.high)] + [-margin, margin])
     return fig
 
 
