@@ -70,7 +70,8 @@ from ..blind.evaluation import rank_metric
 from ..core.errors import SiteproofError, SiteproofWarning
 from ..core.outputs import atomic_write_json, atomic_write_text, check_out_dir
 from ..intake.study import Study, StudySpec, load_study
-from ..unmask.scoring import Scorecard, claim_verdicts, run_unmask
+from ..unmask.scoring import Scorecard, run_unmask
+from ..unmask.verdicts import claim_verdicts
 from .scenario import MIN_N, Scenario
 from .simulate import SimulatedTrial, load_design, population_ate, simulate
 from .studysummary import summarize
