@@ -158,8 +158,8 @@ def test_run_writes_every_output_and_fail_on_flags_a_hidden_site_effect(tmp_path
 
     (tmp_path / "b").mkdir()
     biased = _write_trial(tmp_path / "b", hidden=4.0)
-    code, _, _ = _run(["run", str(biased), *FLAGS, "--fail-on", "different", "--out", str(tmp_path / "bad")], capsys)
-    assert code == 1
+    code, _, err = _run(["run", str(biased), *FLAGS, "--fail-on", "different", "--out", str(tmp_path / "bad")], capsys)
+    assert code == 1 and "different: ate.aipw" in err  # each failing primary claim is named on stderr
 
 
 def test_blind_then_unmask_refuses_other_data(tmp_path, capsys):
@@ -176,6 +176,14 @@ def test_blind_then_unmask_refuses_other_data(tmp_path, capsys):
     assert code == 2 and "claims were made on another dataset" in err
     code, stdout, _ = _run(["unmask", str(data), *flags, "--claims", str(claims), "--out", str(tmp_path / "u")], capsys)
     assert code == 0 and (tmp_path / "u" / "scorecard.json").exists()
+    # a margin other than the locked plan's is refused, unless the deviation is declared (then it is recorded)
+    moved = ["unmask", str(data), *flags, "--claims", str(claims), "--margin", "9.5", "--out", str(tmp_path / "m")]
+    code, _, err = _run(moved, capsys)
+    assert code == 2 and "locked analysis plan" in err and "--deviate-from-plan" in err
+    code, stdout, _ = _run([*moved, "--deviate-from-plan"], capsys)
+    card = json.loads((tmp_path / "m" / "scorecard.json").read_text())
+    assert code == 0 and card["plan"]["deviations"][0]["field"] == "margin" and card["plan"]["deviations"][0]["used"] == 9.5
+    assert "Deviation from the locked analysis plan" in stdout
 
 
 def test_seal_and_grade_from_the_command_line(tmp_path, capsys):

@@ -9,11 +9,12 @@ from scipy import stats
 from siteproof.unmask.correspondence import (
     compare,
     compare_scores,
-    default_margin,
     paired_difference,
     percent_bias_reduction,
+    percent_bias_reduction_ci,
     tost_p_value,
     verdict,
+    verdict_from_p,
 )
 from siteproof.core.errors import SiteproofError
 from siteproof.core.outputs import to_json_text
@@ -163,13 +164,40 @@ def test_percent_bias_reduction():
     assert np.isnan(percent_bias_reduction(0.0, 0.3))
 
 
-def test_default_margin_is_a_tenth_of_the_outcome_sd():
-    y = np.array([1.0, 3.0, 2.0, 6.0])
-    assert default_margin(y) == pytest.approx(0.1 * np.std(y, ddof=1), rel=1e-12)
-    with pytest.raises(SiteproofError):
-        default_margin(np.ones(10))
-    with pytest.raises(SiteproofError):
-        default_margin([1.0, np.nan, 2.0])
+def test_percent_bias_reduction_ci_is_the_delta_method():
+    """SE by the textbook delta method: ∇fᵀ Σ ∇f / n with Σ the sample covariance of (d_a, d_n) and f(b_a, b_n)
+    = 100(1 − |b_a|/|b_n|) (e.g. van der Vaart 1998, ch. 3) — computed here from the covariance matrix, not from
+    the linearised scores the function uses."""
+    rng = np.random.default_rng(3)
+    n = 2000
+    common = rng.normal(size=n)
+    d_n = 1.0 + common + rng.normal(size=n)
+    d_a = 0.3 + 0.5 * common + rng.normal(size=n)
+    pbr = percent_bias_reduction_ci(d_a, d_n)
+    b_a, b_n = d_a.mean(), d_n.mean()
+    assert pbr.estimate == pytest.approx(100 * (1 - abs(b_a) / abs(b_n)), rel=1e-12)
+    grad = np.array([-100 * np.sign(b_a) / abs(b_n), 100 * abs(b_a) * np.sign(b_n) / b_n**2])
+    cov = np.cov(np.vstack([d_a, d_n]), ddof=1)
+    assert pbr.se == pytest.approx(float(np.sqrt(grad @ cov @ grad / n)), rel=1e-10)
+    assert pbr.ci == pytest.approx((pbr.estimate - 1.959964 * pbr.se, pbr.estimate + 1.959964 * pbr.se), rel=1e-6)
+    assert np.isnan(percent_bias_reduction_ci(d_a, np.zeros(n)).se)  # no naive bias: undefined
+
+
+def test_equivalence_bound_is_the_smallest_margin_that_passes():
+    """At δ just above the bound the TOST passes, just below it fails (Schuirmann 1987: 90 % CI inside ±δ)."""
+    res = compare(blind=1.3, design=1.0, se_difference=0.1, margin=1.0)
+    bound = res.equivalence_bound
+    assert bound == pytest.approx(0.3 + 1.6448536 * 0.1, rel=1e-6)  # z_0.95 = 1.6449 (normal table)
+    assert compare(1.3, 1.0, 0.1, margin=bound * 1.001).p_equivalence < 0.05
+    assert compare(1.3, 1.0, 0.1, margin=bound * 0.999).p_equivalence > 0.05
+
+
+@pytest.mark.parametrize(("p_diff", "p_eq", "expected"), [
+    (0.01, 0.01, "trivially different"), (0.01, 0.2, "different"), (0.3, 0.01, "equivalent"),
+    (0.3, 0.2, "indeterminate")])
+def test_verdict_from_p_values(p_diff, p_eq, expected):
+    # Tryon & Lewis (2008): the four classes from the two tests at α = 0.05
+    assert verdict_from_p(p_diff, p_eq, 0.05) == expected
 
 
 @pytest.mark.parametrize(

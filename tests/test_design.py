@@ -145,6 +145,25 @@ def test_ht_and_hajek_reduce_to_dim_with_realized_rates():
         assert row["binom_p"] == pytest.approx(stats.binomtest(int(w[mine].sum()), int(mine.sum()), e).pvalue)
 
 
+def test_ht_and_hajek_use_the_units_of_the_included_cells_only():
+    y, w, site, rate = _toy()
+    stratum = np.where(np.arange(y.size) % 2 == 0, "a", "b")
+    w = w.copy()
+    cell_b = np.flatnonzero((site == "s2") & (stratum == "b"))
+    w[cell_b] = 1
+    w[cell_b[0]] = 0  # cell s2:b has one control unit: the difference in means drops it
+    y = y + 50.0 * ((site == "s2") & (stratum == "b"))  # its units would move HT/Hájek far if counted
+    row = site_table(y, w, site, known_rate=rate, stratum=stratum).set_index("site").loc["s2"]
+    kept = (site == "s2") & (stratum == "a")
+    assert row["n_included"] == int(kept.sum())
+    e = rate[kept][0]
+    # closed form: the Horvitz–Thompson mean over the included cell's units only
+    ht = np.mean(w[kept] * y[kept] / e - (1 - w[kept]) * y[kept] / (1 - e))
+    assert row["ht"] == pytest.approx(ht, rel=1e-12)
+    # closed form: with a rate constant over the units used, Hájek is their difference in means
+    assert row["hajek"] == pytest.approx(row["difference_in_means"], rel=1e-10)
+
+
 def test_sites_with_fewer_than_two_units_in_an_arm_are_excluded_and_listed():
     y, w, site, _ = _toy()
     w = w.copy()

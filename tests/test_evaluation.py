@@ -344,3 +344,16 @@ def test_learners_do_not_beat_the_constant_under_the_null():
     with threadpool_limits(limits=1, user_api="openmp"):
         counts = _null_rejections(range(20), n=1000, learner=HistGradientBoostingRegressor(max_iter=50))
     assert all(c <= 5 for c in counts.values()), counts
+
+
+def test_rank_metric_is_linear_in_the_scores_so_a_blind_design_gap_comes_from_the_scores():
+    """θ = (1/n) Σ ω(p) Γ_(p) given the ranking (Yadlowsky et al.): the paired difference of two columns is the
+    statistic of their difference, ties included, so the computation treats blind and design scores alike."""
+    rng = np.random.default_rng(31)
+    tau = np.round(rng.normal(size=400), 1)  # many ties
+    g_blind, g_design = rng.normal(size=400), rng.normal(size=400)
+    both = rank_metric(tau, np.column_stack([g_blind, g_design]), n_boot=20, seed=3)
+    diff = rank_metric(tau, g_blind - g_design, n_boot=20, seed=3)
+    assert both.difference(0, 1).estimate == pytest.approx(diff.estimate, abs=1e-12)
+    # same half-samples, so the replicate differences are the replicates of the difference
+    np.testing.assert_allclose(both.boot[:, 0] - both.boot[:, 1], diff.boot[:, 0], atol=1e-12)

@@ -26,11 +26,8 @@ from siteproof.reporting import report, sections_design
 from siteproof.reporting.context import RunView
 from siteproof.reporting.screens import claims_renderables, scorecard_renderables
 from siteproof.unmask import correspondence
-from siteproof.unmask.scoring import claim_verdicts, headline
+from siteproof.unmask.verdicts import claim_verdicts, headline
 from test_report import run_copy, small_run
-
-CALIBRATED = ("consistent with a calibrated", "counts as calibrated")
-
 
 def _screen_text(items: list) -> str:
     console = Console(width=400, record=True)
@@ -41,8 +38,21 @@ def _screen_text(items: list) -> str:
 
 def _headline_classes(line: str) -> dict[str, str]:
     """The headline's classes ('recovered', ...) with the text listed under each."""
-    body = line.split(" — ", 1)[1].rstrip(".")
+    body = line.split(" — ", 1)[1].split(". ", 1)[0].rstrip(".")
     return dict(part.split(": ", 1) for part in body.split("; "))
+
+
+def _row(claim: str, verdict: str, ci: tuple[float, float] = (0.1, 0.5)) -> dict:
+    """A verdicts-table row with what the headline reads."""
+    return {"claim": claim, "verdict_adjusted": verdict, "blind": 1.0, "design": 1.2, "margin": 0.3,
+            "difference": {"estimate": sum(ci) / 2, "ci": list(ci)}, "primary": claim == "ate.aipw"}
+
+
+def _fake(rows: list[dict], slope: float = float("nan"), ci=(0.0, 0.0), deviations=(), bound: float = 0.01
+          ) -> SimpleNamespace:
+    return SimpleNamespace(verdicts=rows, plan={"deviations": list(deviations)},
+                           propensity=SimpleNamespace(calibration_slope=SimpleNamespace(estimate=slope, ci=ci),
+                                                      calibration_bound=bound))
 
 
 def _cells(table, column: int) -> list[str]:
@@ -59,8 +69,9 @@ def test_the_scoring_uses_the_verdict_names_of_interpret():
 
 
 def test_claim_recovery_follows_the_verdict_classes():
+    """`trivially different` is a real difference inside the margin: counted apart, never as recovered."""
     assert [claim_recovery(v) for v in (EQUIVALENT, TRIVIALLY_DIFFERENT, DIFFERENT, INDETERMINATE)] == [
-        RECOVERED, RECOVERED, interpret.NOT_RECOVERED, INDETERMINATE]
+        RECOVERED, interpret.BIASED_WITHIN_MARGIN, interpret.NOT_RECOVERED, INDETERMINATE]
 
 
 def test_screen_and_report_show_the_same_average_effect_verdicts_and_labels():
@@ -68,11 +79,12 @@ def test_screen_and_report_show_the_same_average_effect_verdicts_and_labels():
     card = run.scorecard
     md = report.build_document(*run_copy()).markdown()
     # the scorecard screen's verdict column, row by row (each estimator, then its same-estimand comparison)
-    screen_verdicts = _cells(scorecard_renderables(card)[2], 5)
     table = md[md.index("**Blind estimators against the pooled design-based effect"):]
     rows = [line for line in table.split("\n\n")[1].splitlines()[2:]]
-    report_verdicts = [line.rstrip(" |").rsplit("| ", 1)[1] for line in rows]
-    assert screen_verdicts == report_verdicts
+    for column in (5, 6):  # raw verdict, adjusted verdict: the report's last two columns
+        screen_verdicts = _cells(scorecard_renderables(card)[2], column)
+        report_verdicts = [line.rstrip(" |").split(" | ")[column - 7] for line in rows]
+        assert screen_verdicts == report_verdicts
     # the claims screen and the report name each estimator with the same label
     labels = _cells(claims_renderables(Claims.from_dict(run.claims, run.units))[1], 0)
     assert labels == [estimator_label(r["estimator"]) for r in run.claims["ate"]]
@@ -95,20 +107,18 @@ def test_summary_counts_are_the_verdicts_every_other_output_uses():
         assert word in screen
 
 
-@pytest.mark.parametrize("slope, ci", [(1.0, (0.9, 1.1)), (0.95, (0.93, 0.97)), (1.08, (1.05, 1.11)),
-                                       (0.5, (0.4, 0.6)), (1.5, (1.3, 1.7)), (0.85, (0.82, 0.88))])
-def test_headline_screen_and_report_judge_the_propensity_alike(slope, ci):
-    recovered = propensity_recovered(slope, ci)
-    # the headline
-    fake = SimpleNamespace(ate=[], cate=[], rules=[],
-                           propensity=SimpleNamespace(calibration_slope=SimpleNamespace(estimate=slope, ci=ci)))
-    line = headline(fake)
+@pytest.mark.parametrize("bound, slope, ci, recovered", [
+    (0.02, 1.0, (0.9, 1.1), True), (0.02, 0.7, (0.6, 0.8), True), (0.08, 1.0, (0.9, 1.1), False),
+    (0.02, 0.3, (0.2, 0.4), False), (0.05, 0.5, (0.5, 0.6), True), (0.02, 1.5, (1.3, 1.7), True)])
+def test_headline_screen_and_report_judge_the_propensity_alike(bound, slope, ci, recovered):
+    # the rule: calibration bound ≤ 0.05 and lower end of the slope's 95 % CI ≥ 0.5 (docs/methods-unmask.md §8)
+    assert propensity_recovered(bound, ci) == recovered
+    line = headline(_fake([], slope, ci, bound=bound))
     assert ("the propensity" in _headline_classes(line)[RECOVERED if recovered else interpret.NOT_RECOVERED])
-    # the report's overlap reading
+    # the report's overlap reading states the same slope judgement
     claims, card = run_copy()
     card["propensity"]["calibration_slope"].update(estimate=slope, ci=list(ci))
     reading = sections_design.overlap_reading(RunView(claims, card), claims["overlap"], card["propensity"])[1]
-    assert any(word in reading for word in CALIBRATED) == recovered
     assert calibration_judgement(slope, ci) in reading
 
 
@@ -122,17 +132,42 @@ def test_the_screen_states_the_same_calibration_judgement_as_the_report():
 
 
 def test_headline_uses_the_verdict_names():
-    rows = [SimpleNamespace(verdict=v) for v in (INDETERMINATE, EQUIVALENT, DIFFERENT)]
-    comparison = SimpleNamespace(blind=1.0, design=1.2, verdict=INDETERMINATE)
-    fake = SimpleNamespace(ate=[SimpleNamespace(estimator="aipw", comparison=comparison)], cate=rows, rules=[],
-                           propensity=SimpleNamespace(calibration_slope=SimpleNamespace(estimate=float("nan"),
-                                                                                        ci=(0.0, 0.0))))
-    line = headline(fake)
+    rows = [_row("ate.aipw", INDETERMINATE, (-0.5, 0.1))]
+    rows += [_row(f"cate.{m}.autoc", v) for m, v in (("t", INDETERMINATE), ("r", EQUIVALENT), ("dr", DIFFERENT))]
+    rows.append(_row("cate.t.qini", DIFFERENT))  # only the AUTOC row is the model's headline claim
+    line = headline(_fake(rows))
     classes = list(_headline_classes(line))
     assert classes == [RECOVERED, interpret.NOT_RECOVERED, INDETERMINATE]
     assert f"{INDETERMINATE}: the average effect (blind {estimator_label('aipw')} 1 vs design 1.2), 1 of 3" in line
     assert "undetermined" not in line
     assert all(c in interpret.RECOVERY_CLASSES for c in classes)
+
+
+def test_headline_counts_trivially_different_apart_and_never_the_naive_reference():
+    rows = [_row("ate.aipw", TRIVIALLY_DIFFERENT), _row("ate.naive", EQUIVALENT, (-0.2, 0.3)),
+            _row("rule.t.top20", EQUIVALENT), _row("rule.t.top50", TRIVIALLY_DIFFERENT)]
+    line = headline(_fake(rows))
+    classes = _headline_classes(line)
+    assert "the average effect" in classes[interpret.BIASED_WITHIN_MARGIN]
+    assert classes[RECOVERED] == "1 of 2 rule gains"
+    assert "naive" not in " ".join(classes.values())
+    # the naive D's 95 % CI includes 0: the benchmark cannot discriminate, and the headline says so
+    assert "cannot discriminate" in line
+
+
+@pytest.mark.parametrize("naive, phrase", [
+    (_row("ate.naive", DIFFERENT, (0.4, 0.9)), "can discriminate"),
+    (_row("ate.naive", TRIVIALLY_DIFFERENT, (0.05, 0.2)), "cannot show an adjusted estimator beating it"),
+    (_row("ate.naive", INDETERMINATE, (-0.1, 0.9)), "cannot discriminate"),
+])
+def test_headline_says_whether_the_benchmark_can_discriminate(naive, phrase):
+    assert phrase in headline(_fake([_row("ate.aipw", EQUIVALENT), naive]))
+
+
+def test_headline_names_a_deviation_from_the_plan():
+    line = headline(_fake([_row("ate.aipw", EQUIVALENT)], deviations=[
+        {"field": "margin", "planned": 1.0, "used": 2.0}]))
+    assert "deviation from the locked plan (margin 1.0 → 2.0)" in line
 
 
 def test_heterogeneity_statuses_of_the_scorecard_are_the_ones_the_outputs_explain():

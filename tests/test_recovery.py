@@ -14,8 +14,10 @@ from sklearn.linear_model import LogisticRegression
 
 from siteproof.blind.average import kish_ess
 from siteproof.core.errors import SiteproofError
+from siteproof.core.interpret import CALIBRATION_MARGIN, propensity_recovered
 from siteproof.unmask.recovery import (
     calibration_bins,
+    calibration_bound,
     calibration_line,
     recover_propensity,
     rmse,
@@ -63,6 +65,40 @@ def test_calibration_line_detects_a_compressed_propensity():
     # e(X) = 0.5 + 2(ê − 0.5) = −0.5 + 2ê, so E[e_S | ê] has slope 2 and intercept −0.5.
     assert abs(slope.estimate - 2.0) < 4 * slope.se
     assert abs(intercept.estimate + 0.5) < 4 * intercept.se
+
+
+def test_verdict_separates_good_from_poor_learners():
+    x, p, site, known, mixture, w = mixture_world(3000, seed=15)
+    rng = np.random.default_rng(16)
+    # a noisy but unbiased learner: reliability Var(e)/(Var(e) + 0.05²) ≈ 0.85 here, so its slope is
+    # diluted well below the old 0.9 cut-off, yet it is calibrated within δ and informative
+    noisy = np.clip(mixture + rng.normal(0, 0.05, mixture.size), 0.02, 0.98)
+    cases = {
+        "true mixture": (mixture, True),
+        "noisy": (noisy, True),
+        "noise fit": (np.clip(known.mean() + rng.normal(0, 0.05, known.size), 0.02, 0.98), False),
+        "constant": (np.full(known.size, known.mean()), False),
+    }
+    for label, (e_hat, expected) in cases.items():
+        rec = recover_propensity(e_hat, known, site, w)
+        assert rec.recovered is expected, label
+        assert rec.to_dict()["recovered"] is expected
+    slope, _ = calibration_line(noisy, known)
+    reliability = np.var(mixture) / (np.var(mixture) + 0.05**2)
+    # dilution: the slope of e_S on e + u is Var(e)/(Var(e) + Var(u)) (clipping at 0.02/0.98 hardly binds)
+    assert abs(slope.estimate - reliability) < 4 * slope.se + 0.01
+    assert slope.ci[1] < 0.9  # the old rule (CI covers 1 or |b − 1| ≤ 0.1) calls this learner not recovered
+    # the constant learner is calibrated (bound ≈ 0): calibration alone would not catch it
+    assert calibration_bound(calibration_bins(np.full(known.size, known.mean()), known)) < CALIBRATION_MARGIN
+
+
+def test_calibration_bound_closed_form():
+    bins = calibration_bins(np.array([0.2, 0.2, 0.6, 0.6]), np.array([0.3, 0.3, 0.5, 0.7]), n_bins=2)
+    # bin 1: |0.3 − 0.2| = 0.1, SE 0; bin 2: |0.6 − 0.6| = 0, SE sd(0.5, 0.7)/√2 = 0.1
+    # ECE = ½·0.1 + ½·0 = 0.05; bound = 0.05 + 1.6449·√(¼·0.1²) = 0.05 + 0.08224 (scipy norm.ppf(0.95))
+    assert calibration_bound(bins) == pytest.approx(0.05 + 1.6448536269514722 * 0.05, rel=1e-9)
+    assert propensity_recovered(0.04, (0.6, 1.0)) and not propensity_recovered(0.06, (0.6, 1.0))
+    assert not propensity_recovered(0.01, (0.4, 1.0)) and not propensity_recovered(0.01, (np.nan, np.nan))
 
 
 def test_rmse_of_the_perfect_propensity_equals_its_floor():

@@ -161,14 +161,20 @@ def test_average_effect_table_shows_the_scorecard_numbers_and_verdicts(written):
         line = next(l for l in md.splitlines() if l.startswith(f"| {label} | "))
         assert f"{b['estimate']:.{d}f} [{b['ci'][0]:.{d}f}, {b['ci'][1]:.{d}f}]" in line
         assert f"{dif['estimate']:.{d}f} [{dif['ci'][0]:.{d}f}, {dif['ci'][1]:.{d}f}]" in line
-        assert line.rstrip(" |").endswith(row["verdict"])
-    # the verdict words of the figure's right panel are the scorecard's, in order
+        adjusted = next(v["verdict_adjusted"] for v in card["verdicts"] if v["claim"] == f"ate.{row['estimator']}")
+        raw_cell, adjusted_cell = line.rstrip(" |").split(" | ")[-2:]
+        assert raw_cell == row["verdict"]
+        assert adjusted_cell == ("—" if row.get("same_estimand") else adjusted)
+    # the verdict words of the figure's right panel are the scorecard's adjusted verdicts, in order (the overlap
+    # estimator: its raw verdict against the ATE, then its adjusted same-estimand verdict)
     svg = (out / "figures" / "average-effect.svg").read_text(encoding="utf-8")
+    adjusted = {v["claim"]: v["verdict_adjusted"] for v in card["verdicts"]}
     expected = []
     for row in card["ate"]:
-        expected.append(row["verdict"])
+        claim = f"ate.{row['estimator']}"
+        expected.append(row["verdict"] if row.get("same_estimand") else adjusted[claim])
         if row.get("same_estimand"):
-            expected.append(row["same_estimand"]["verdict"])
+            expected.append(adjusted[claim])
     words = re.findall(r">(equivalent|different|trivially different|indeterminate)<", svg)
     assert words == expected
 
@@ -191,14 +197,14 @@ def test_study_and_sites_tables_match_the_scorecard(written):
 
 @pytest.mark.parametrize("verdict, phrase", [
     ("equivalent", "lies within ±δ"),
-    ("different", "by more than the margin allows"),
+    ("different", "equivalence within ±δ"),
     ("trivially different", "but by less than δ"),
     ("indeterminate", "too wide to tell"),
 ])
 def test_average_reading_follows_the_verdict(verdict, phrase):
     claims, card = run_copy()
     aipw = next(r for r in card["ate"] if r["estimator"] == "aipw")
-    aipw["verdict"] = verdict
+    next(r for r in card["verdicts"] if r["claim"] == "ate.aipw")["verdict_adjusted"] = verdict  # what is read
     section = sections_effects.average_section(RunView(claims, card))
     first, second = section.reading
     assert phrase in first and first.rstrip(".").endswith(verdict)
@@ -212,7 +218,7 @@ def test_overlap_reading_judges_the_calibration_slope():
     run = RunView(claims, card)
     slope = card["propensity"]["calibration_slope"]
     for ci, word in (([0.9, 1.1], "consistent with a calibrated"), ([0.3, 0.5], "too spread out"),
-                     ([1.3, 1.6], "too compressed"), ([1.02, 1.08], "counts as calibrated")):
+                     ([1.3, 1.6], "too compressed"), ([0.6, 0.8], "below 1 by dilution")):
         slope.update(estimate=sum(ci) / 2, ci=ci)
         assert word in sections_design.overlap_reading(run, claims["overlap"], card["propensity"])[1]
 

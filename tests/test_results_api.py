@@ -17,6 +17,7 @@ from siteproof.blind.analysis import BlindConfig, run_blind
 from siteproof.blind.claims import Claims, read_claims, write_claims
 from siteproof.core.errors import SiteproofError
 from siteproof.core.estimates import Estimate
+from siteproof.core.outputs import to_json_text
 from siteproof.intake.study import StudySpec, load_study
 from siteproof.pipeline import run_pipeline
 from siteproof.simulation.simulate import simulate
@@ -25,14 +26,19 @@ from siteproof.unmask.heterogeneity import random_effects
 from siteproof.unmask.scoring import run_unmask
 
 REPR_LIMIT = 1000
-SCORECARD_COLUMNS = {"claim", "family", "blind", "design", "difference", "se", "ci_low", "ci_high", "statistic",
+SCORECARD_COLUMNS = {"claim", "family", "primary", "blind", "design", "difference", "se", "ci_low", "ci_high",
+                     "margin", "equivalence_bound", "p_difference", "p_difference_adjusted", "p_equivalence",
+                     "p_equivalence_adjusted", "verdict", "verdict_adjusted", "pbr", "pbr_ci_low", "pbr_ci_high"}
+# the per-component frames (one ATE estimator, one CATE model, one rule) keep the comparison columns
+COMPONENT_COLUMNS = {"claim", "family", "blind", "design", "difference", "se", "ci_low", "ci_high", "statistic",
                      "p_value", "verdict"}
 # the top-level keys of claims.json and scorecard.json (docs/claims-format.md, docs/scorecard-format.md)
 CLAIMS_KEYS = {"schema", "version", "siteproof_version", "fingerprint", "settings", "data", "nuisance", "overlap",
-               "balance", "warnings", "ate", "cate", "rules", "timings"}
+               "balance", "warnings", "ate", "cate", "rules", "timings", "plan"}
 SCORECARD_KEYS = {"schema", "version", "siteproof_version", "headline", "rates_source", "study", "sites",
                   "design_ate", "design_oracle_aipw", "naive_ate", "ate", "propensity", "heterogeneity", "cate",
-                  "rules", "transport", "warnings"}
+                  "rules", "transport", "warnings", "plan", "verdicts", "site_verdicts", "within_site_balance",
+                  "within_site_checks", "reference_agreement"}
 
 
 def quick_config() -> BlindConfig:
@@ -87,7 +93,8 @@ def test_claims_face_and_round_trip(notebook, tmp_path):
     assert {"ATE", "R-loss", "CATE", "GATES", "BLP", "rank", "rule"} <= set(frame["family"])
     assert (frame["family"] == "rule").sum() == 2 * len(claims.to_dict()["rules"])
     card_claims = set(notebook[2].to_frame()["claim"])
-    assert {c for c in frame["claim"] if c.startswith("CATE t")} - {"CATE t BLP β₁"} <= card_claims
+    assert {"cate.t.autoc", "cate.t.qini", "cate.t.beta2", "cate.t.high_low", "cate.t.top_bottom"} <= card_claims
+    assert {c for c in card_claims if c.startswith("cate.t.gate")} == {f"cate.t.gate{g}" for g in range(1, 6)}
     assert (frame["ci_low"] <= frame["estimate"]).all() and (frame["estimate"] <= frame["ci_high"]).all()
     again = Claims.from_dict(claims.to_dict(), claims.units)
     assert again == claims and again.to_dict() == claims.to_dict()
@@ -109,20 +116,25 @@ def test_scorecard_face_and_round_trip(notebook):
     _, claims, card = notebook
     frame = _check_face(card, SCORECARD_COLUMNS)
     n_rules = len(claims.to_dict()["rules"])
-    assert (frame["family"] == "rule").sum() == 2 * n_rules
-    assert frame["claim"].str.startswith("ATE ").sum() == 6  # five estimators + the overlap same-estimand row
+    assert (frame["family"] == "rule").sum() == n_rules  # one verdict per rule (its gain, or its value)
+    assert frame["claim"].str.startswith("ate.").sum() == 5
+    assert frame.loc[frame["claim"] == "ate.naive", "family"].item() == "reference"
+    assert frame["primary"].sum() == 1 and frame.loc[frame["primary"], "claim"].item() == "ate.aipw"
     assert len(frame) == len(frame["claim"].unique())
-    # statistic = difference / se for every row: the normal test statistic of the paired difference
+    # equivalence bound = max |end| of the 90 % CI of D = |D| + z_0.95·SE (Wald; z_0.95 = 1.6449, normal table)
     finite = frame["se"] > 0
-    assert np.allclose(frame.loc[finite, "statistic"], frame.loc[finite, "difference"] / frame.loc[finite, "se"],
-                       rtol=1e-9)
+    assert np.allclose(frame.loc[finite, "equivalence_bound"],
+                       frame.loc[finite, "difference"].abs() + 1.6448536 * frame.loc[finite, "se"], rtol=1e-6)
     loaded = Scorecard.from_dict(card.to_dict())
     assert loaded == card and loaded.to_dict() == card.to_dict()
     assert loaded.to_frame().equals(frame)
+    # through the JSON text of scorecard.json (NaN written as null) and back: the same verdicts table
+    from_file = Scorecard.from_dict(json.loads(to_json_text(card.to_dict())))
+    pd.testing.assert_frame_equal(from_file.to_frame(), frame)
     for row in (*card.ate, *card.cate, *card.rules):
-        _check_face(row, SCORECARD_COLUMNS)
+        _check_face(row, COMPONENT_COLUMNS)
     with pytest.raises(SiteproofError):
-        Scorecard.from_dict({**card.to_dict(), "version": 2})
+        Scorecard.from_dict({**card.to_dict(), "version": 1})
 
 
 def test_estimate_conf_int_and_face():
@@ -147,7 +159,7 @@ def test_files_hold_exactly_the_dict_forms(trial, tmp_path):
     result = run_pipeline(spec_for(trial, path), tmp_path / "out", quick_config(), report=False)
     on_disk = json.loads((tmp_path / "out" / "claims.json").read_text())
     assert set(on_disk) == CLAIMS_KEYS == set(result.claims.to_dict())
-    assert on_disk["version"] == 1
+    assert on_disk["version"] == 2
     card = json.loads((tmp_path / "out" / "scorecard.json").read_text())
     assert set(card) == SCORECARD_KEYS == set(result.scorecard.to_dict())
     assert Scorecard.from_dict(card).to_frame()["claim"].tolist() == result.scorecard.to_frame()["claim"].tolist()

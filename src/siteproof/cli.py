@@ -73,7 +73,8 @@ _DATA_HELP = {
     "cost": "Per-unit cost of treating.",
     "stratum": "Randomization stratum within site.",
     "rates": "Known assignment probabilities, e.g. A=0.5,B=0.8 (or SITE:STRATUM=P).",
-    "margin": "Equivalence margin δ (default 0.1 × SD of the outcome).",
+    "margin": "Equivalence margin δ of the ATE family, locked in the blind plan (default 0.1 × pooled within-arm "
+              "residual SD of the outcome).",
     "seed": "Seed for every random step (same seed, same output).",
     "encoding": "Text encoding of a CSV that is not UTF-8, e.g. latin-1.",
     "keep_column": "Keep a covariate that resembles the site (repeatable).",
@@ -164,14 +165,23 @@ FoldsOpt = Annotated[int, typer.Option("--folds", help="Cross-fitting folds K.")
 ModelsOpt = Annotated[str, typer.Option("--models", help="Effect models by key: constant,s,t,x,r,dr.")]
 TransportOpt = Annotated[bool, typer.Option("--transport", help="Also run leave-one-site-out transport.")]
 WorkersOpt = Annotated[int, typer.Option("--workers", help="Local processes for transport.")]
-FailOnOpt = Annotated[Optional[str], typer.Option("--fail-on", help="Exit 1 when any claim gets this verdict ('different').", callback=_fail_on)]
+FailOnOpt = Annotated[Optional[str], typer.Option(
+    "--fail-on", help="Exit 1 when a primary claim's adjusted verdict is this ('different'); failing ids on stderr.",
+    callback=_fail_on)]
 SeedOpt = Annotated[int, typer.Option("--seed", help="Random seed, 0 ≤ seed < 2³² (same seed, same output).", callback=_seed)]
+AlphaOpt = Annotated[Optional[float], typer.Option("--alpha", help="Test level α of the plan (default 0.05).")]
+MultiplicityOpt = Annotated[Optional[str], typer.Option(
+    "--multiplicity", help="Adjustment within each claim family: holm (default) or bh.")]
+DeviateOpt = Annotated[bool, typer.Option(
+    "--deviate-from-plan", help="Allow --margin/--alpha/--multiplicity to differ from the locked plan (recorded).")]
 
 
-def _blind_config(seed: int, folds: int, models: str):
+def _blind_config(seed: int, folds: int, models: str, alpha: Optional[float] = None,
+                  multiplicity: Optional[str] = None):
     from .blind.analysis import BlindConfig
 
-    return BlindConfig(seed=seed, folds=folds, models=tuple(split_list(models) or ()))
+    plan = {k: v for k, v in (("alpha", alpha), ("multiplicity", multiplicity)) if v is not None}
+    return BlindConfig(seed=seed, folds=folds, models=tuple(split_list(models) or ()), **plan)
 
 
 def _fit_progress(config):
@@ -203,11 +213,14 @@ def _refuse_existing_files(paths: list[Optional[Path]], force: bool) -> None:
 
 
 def _exit_for(scorecard, fail_on: Optional[str]) -> None:
-    from .unmask.scoring import any_different
+    from .unmask.verdicts import failing_claims
 
     if fail_on is None:
         return
-    if any_different(scorecard):
+    failing = failing_claims(scorecard)
+    for claim in failing:
+        typer.echo(f"different: {claim}", err=True)
+    if failing:
         raise typer.Exit(1)
 
 
@@ -260,15 +273,17 @@ def blind(
     out: OutOpt,
     folds: FoldsOpt = 5,
     models: ModelsOpt = "constant,s,t,x,r,dr",
+    alpha: AlphaOpt = None,
+    multiplicity: MultiplicityOpt = None,
     force: ForceOpt = False,
 ) -> None:
-    """Blind analysis (site hidden): propensities, average and heterogeneous effects, rules → claims.json."""
+    """Blind analysis (site hidden): propensities, average and heterogeneous effects, rules, locked plan → claims.json."""
     spec = spec_from_flags(flags, out)
     from .core.console import console
     from .pipeline import blind_stage
     from .reporting.screens import claims_renderables
 
-    config = _blind_config(spec.seed, folds, models)
+    config = _blind_config(spec.seed, folds, models, alpha, multiplicity)
     with _fit_progress(config) as tick:
         _, claims = blind_stage(spec, out, config, force=force, progress=tick)
     for item in claims_renderables(claims):
@@ -285,14 +300,18 @@ def unmask(
     transport: TransportOpt = False,
     workers: WorkersOpt = 1,
     fail_on: FailOnOpt = None,
+    alpha: AlphaOpt = None,
+    multiplicity: MultiplicityOpt = None,
+    deviate_from_plan: DeviateOpt = False,
     force: ForceOpt = False,
 ) -> None:
-    """Reveal sites and known rates; score every blind claim → scorecard.json with verdicts."""
+    """Reveal sites and known rates; score every blind claim by the locked plan → scorecard.json with verdicts."""
     spec = spec_from_flags(flags, out)
     from .pipeline import unmask_stage
 
     result = unmask_stage(
-        spec, claims, out, margin=flags.margin, transport=transport, workers=workers, force=force
+        spec, claims, out, margin=flags.margin, alpha=alpha, multiplicity=multiplicity,
+        deviate_from_plan=deviate_from_plan, transport=transport, workers=workers, force=force,
     )
     _print_scorecard(result.scorecard, out)
     _exit_for(result.scorecard, fail_on)
@@ -308,13 +327,15 @@ def run(
     transport: TransportOpt = False,
     workers: WorkersOpt = 1,
     fail_on: FailOnOpt = None,
+    alpha: AlphaOpt = None,
+    multiplicity: MultiplicityOpt = None,
     force: ForceOpt = False,
 ) -> None:
-    """Blind analysis, unmasking and report in one go."""
+    """Blind analysis (with its locked plan), unmasking and report in one go."""
     spec = spec_from_flags(flags, out)
     from .pipeline import run_pipeline
 
-    config = _blind_config(spec.seed, folds, models)
+    config = _blind_config(spec.seed, folds, models, alpha, multiplicity)
     with _fit_progress(config) as tick:
         result = run_pipeline(
             spec, out, config, margin=flags.margin, transport=transport, workers=workers, force=force, progress=tick

@@ -8,7 +8,7 @@ stage succeeded (:class:`~siteproof.core.outputs.StagedOutput`), so an error nev
 from __future__ import annotations
 
 import shutil
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable
 
@@ -65,14 +65,18 @@ def blind_stage(
 
 def unmask_stage(
     spec: StudySpec, claims_dir: Path | str, out_dir: Path | str, *, margin: float | None = None,
+    alpha: float | None = None, multiplicity: str | None = None, deviate_from_plan: bool = False,
     transport: bool = False, workers: int = 1, force: bool = False, report: bool = True,
 ) -> PipelineResult:
-    """Unmask earlier claims against the sites' randomization; writes ``scorecard.json`` (and the report)."""
+    """Unmask earlier claims against the sites' randomization; writes ``scorecard.json`` (and the report).
+
+    The claims' locked plan fixes margin, alpha and multiplicity; other values need ``deviate_from_plan``."""
     check_out_dir(out_dir, force)
     study = load_study(spec)
     claims = read_claims(claims_dir)
     scorecard = run_unmask(
-        study, claims, margin=_margin(spec, margin), seed=spec.seed, transport=transport, workers=workers
+        study, claims, margin=_margin(spec, margin), alpha=alpha, multiplicity=multiplicity,
+        deviate_from_plan=deviate_from_plan, seed=spec.seed, transport=transport, workers=workers,
     )
     with StagedOutput(out_dir, force) as staged:
         if Path(claims_dir).resolve() == Path(out_dir).resolve():  # the new folder keeps the claims it scores
@@ -88,14 +92,13 @@ def run_pipeline(
     report: bool = True, progress: Tick | None = None,
 ) -> PipelineResult:
     """Blind + unmask (+ report) in one go; with ``out_dir`` all outputs are published together at the end,
-    without it nothing is written (the results stay in the returned objects)."""
+    without it nothing is written (the results stay in the returned objects).  ``margin`` (or the study's)
+    goes into the blind stage's locked plan, so unmasking follows that plan without deviation."""
     if out_dir is not None:
         check_out_dir(out_dir, force)
     study = load_study(spec)
-    claims = run_blind(study, _config_for(spec, config), progress=progress)
-    scorecard = run_unmask(
-        study, claims, margin=_margin(spec, margin), seed=spec.seed, transport=transport, workers=workers,
-    )
+    claims = run_blind(study, _config_for(spec, config, margin), progress=progress)
+    scorecard = run_unmask(study, claims, seed=spec.seed, transport=transport, workers=workers)
     if out_dir is None:
         return PipelineResult(study, claims, scorecard, None)
     with StagedOutput(out_dir, force) as staged:
@@ -166,9 +169,12 @@ def run_demo(
     return results
 
 
-def _config_for(spec: StudySpec, config: BlindConfig | None) -> BlindConfig:
-    """The blind settings, seeded from the study's seed unless a config was given."""
-    return config if config is not None else BlindConfig(seed=spec.seed)
+def _config_for(spec: StudySpec, config: BlindConfig | None, margin: float | None = None) -> BlindConfig:
+    """The blind settings, seeded from the study's seed unless a config was given; a margin given here or in
+    the study (and not in the config) becomes the plan's ATE-family margin."""
+    config = config if config is not None else BlindConfig(seed=spec.seed)
+    chosen = _margin(spec, margin)
+    return replace(config, margin=chosen) if config.margin is None and chosen is not None else config
 
 
 def _margin(spec: StudySpec, margin: float | None) -> float | None:

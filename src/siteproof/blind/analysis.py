@@ -6,7 +6,9 @@ construction) and runs, in order:
 1. K-fold cross-fitting of the nuisances ê(x), μ̂₀(x), μ̂₁(x), m̂(x) (``nuisance``);
 2. overlap and balance diagnostics and the average-effect estimators, each with per-unit scores (``average``);
 3. the CATE models, out-of-fold (``effects``), and their evaluation with the blind AIPW scores (``evaluation``);
-4. the learned treatment rules and their doubly robust values (``rules``).
+4. the learned treatment rules and their doubly robust values (``rules``);
+5. the locked analysis plan — alpha, multiplicity method, every margin, the primary claims — with its SHA-256
+   (``plan``), fixed here, before any site is seen.
 
 Every figure is recorded as a claim with SE and 95 % CI in a :class:`Claims` object; per-unit quantities go to
 the sidecar table that the unmask step re-scores with the known rates.
@@ -41,6 +43,9 @@ from .rules import TreeRule, budget_rule, cross_fitted_tree, rule_value, thresho
 from ..core.scores import arm_scores
 from ..intake.study import BlindData, Study
 from .claims import CLAIMS_SCHEMA, CLAIMS_VERSION, Claims, rule_column, rule_name, score_column, tau_column
+from .plan import build_plan, check_multiplicity
+from ..core.checks import alpha_level
+from ..core.interpret import ALPHA, DEFAULT_MULTIPLICITY, DEFAULT_PRIMARY
 
 ATE_ESTIMATORS = ("naive", "regression", "ipw", "aipw", "overlap")
 SMALL_DATA = 20_000  # below this many units the boosting fits run on one OpenMP thread (see _thread_limit)
@@ -60,6 +65,10 @@ class BlindConfig:
     tree: bool = True
     tree_bins: int = 32
     threads: int | None = None
+    margin: float | None = None
+    alpha: float = ALPHA
+    multiplicity: str = DEFAULT_MULTIPLICITY
+    primary: tuple[str, ...] = DEFAULT_PRIMARY
     nuisance_learners: dict[str, Any] | None = field(default=None, compare=False)
     cate_learner: Any = field(default=None, compare=False)
 
@@ -100,6 +109,10 @@ class BlindConfig:
             raise SiteproofError(f"threads = {self.threads} is not a positive count", "use threads ≥ 1, or None for the default")
         if self.n_boot < 20:
             raise SiteproofError("too few bootstrap draws for an SE", "use n_boot ≥ 20 (default 200)")
+        if self.margin is not None and not (np.isfinite(self.margin) and self.margin > 0):
+            raise SiteproofError(f"the equivalence margin is {self.margin}", "give a positive number in outcome units")
+        alpha_level(self.alpha, upper=0.5)
+        check_multiplicity(self.multiplicity)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready settings (learner objects are described by their class names)."""
@@ -114,6 +127,10 @@ class BlindConfig:
             "tree": self.tree,
             "tree_bins": self.tree_bins,
             "threads": self.threads,
+            "margin": self.margin,
+            "alpha": self.alpha,
+            "multiplicity": self.multiplicity,
+            "primary": list(self.primary),
             "nuisance_learners": "default" if self.nuisance_learners is None else "user-supplied",
             "cate_learner": "default" if self.cate_learner is None else type(self.cate_learner).__name__,
         }
@@ -313,6 +330,8 @@ def _run_blind(data: BlindData, config: BlindConfig, progress: Callable[[str], N
         "rules": rule_records,
         "timings": {k: round(v, 3) for k, v in timings.items()},
     }
+    record["plan"] = build_plan(record, data.y, data.w, nuis.mu0, nuis.mu1, margin=config.margin,
+                                alpha=config.alpha, multiplicity=config.multiplicity, primary=config.primary)
     units = _units_table(data, nuis, ates, fits, assignments)
     return Claims(record=record, units=units, cate_fits=fits, tree=tree)
 

@@ -1,7 +1,7 @@
 """The blind claims as a typed object, and their files: ``claims.json`` plus the per-unit sidecar ``units.parquet``.
 
 The format is documented in docs/claims-format.md.  Both files are written atomically; reading checks the
-schema name and version.
+schema name and version and the SHA-256 of the locked analysis plan (``plan``).
 """
 
 from __future__ import annotations
@@ -18,12 +18,13 @@ from ..core.errors import SiteproofError
 from ..core.outputs import atomic_write_bytes, atomic_write_json
 from ..core.results import ResultsMixin
 from .effects import CateFit
+from .plan import check_plan
 from .rules import TreeRule
 
 CLAIMS_FILE = "claims.json"
 UNITS_FILE = "units.parquet"
 CLAIMS_SCHEMA = "siteproof/claims"
-CLAIMS_VERSION = 1
+CLAIMS_VERSION = 2  # 2: the locked analysis plan (``plan``) is part of the record
 FRAME_COLUMNS = ("claim", "family", "estimate", "se", "ci_low", "ci_high")
 
 
@@ -89,6 +90,7 @@ def _check_schema(record: dict[str, Any], where: str) -> None:
             f"{where} has claims format version {record.get('version')!r}; this siteproof reads version {CLAIMS_VERSION}",
             "rerun `siteproof blind` with this version of siteproof",
         )
+    check_plan(record, where)
 
 
 @dataclass(repr=False)

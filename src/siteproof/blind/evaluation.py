@@ -430,6 +430,9 @@ def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200,
     m = n/2 (finite-population correction of sampling without replacement), which is the full-sample
     variance; so SD(replicates) is the SE.  ``gamma`` of shape (n, c) gives one result per column from the
     same half-samples; ``boot`` keeps the replicates for paired differences (:meth:`RankResult.difference`).
+    Columns built from different propensities (ê vs a known rate) with the μ̂ that also produced τ̂ differ by
+    a product of nuisance errors that the ranking selects on, so their paired difference is biased even though
+    θ is computed identically for both (docs/methods-heterogeneity.md, "Blind vs design AUTOC").
     """
     if kind not in RANK_KINDS:
         raise SiteproofError(f"unknown rank metric kind {kind!r}", f"use one of {', '.join(RANK_KINDS)}")

@@ -222,11 +222,17 @@ def _hajek(y: np.ndarray, w: np.ndarray, e: np.ndarray) -> tuple[float, float]:
 def _weighted_estimates(y: np.ndarray, w: np.ndarray, e: np.ndarray | None) -> dict[str, float]:
     """Horvitz–Thompson and Hájek estimates of one site with known rates (NaN if not computable)."""
     nan = {"ht": math.nan, "ht_se": math.nan, "hajek": math.nan, "hajek_se": math.nan}
-    if e is None or not np.all((e > 0) & (e < 1)) or w.min() == w.max():
+    if e is None or not w.size or not np.all((e > 0) & (e < 1)) or w.min() == w.max():
         return nan
     ht, ht_se = mean_and_se(ipw_scores(y, w, e))
     hajek, hajek_se = _hajek(y, w.astype(float), e)
     return {"ht": ht, "ht_se": ht_se, "hajek": hajek, "hajek_se": hajek_se}
+
+
+def _included_index(cells: list[_Cell]) -> np.ndarray:
+    """Indices of the units in the cells with ≥ 2 units per arm (the units the difference in means uses)."""
+    used = [c.index for c in cells if c.arms.usable]
+    return np.concatenate(used) if used else np.empty(0, dtype=int)
 
 
 def _declared_columns(
@@ -251,7 +257,8 @@ def site_table(
     a stratum, the site's DiM is the cell-size-weighted DiM over its cells with ≥ 2 units per arm and its
     variance Σ (n_c/n_s)² V_c; ``binom_p`` is the exact test of the site's treated count (a sum of cell
     binomials, :func:`count_test`).  A site is ``included`` when at least one of its cells has ≥ 2 units in
-    each arm; HT/Hájek (with the known rate, SE from the per-unit scores) are reported for those sites.
+    each arm; HT/Hájek (with the known rate, SE from the per-unit scores) are reported for those sites and
+    use the same units as the difference in means (those of the included cells, ``n_included`` of them).
     """
     y, w = _as_arrays(y, w)
     site = np.asarray(site).astype(str).astype(object)
@@ -268,9 +275,8 @@ def site_table(
         se = math.sqrt(var) if np.isfinite(var) else math.nan
         low, high = normal_ci(est, se) if np.isfinite(se) else (math.nan, math.nan)
         rate_declared, binom_p = _declared_columns(w, index, mine, dec)
-        weighted = _weighted_estimates(y[index], w[index], None if e is None else e[index])
-        if not n_inc:
-            weighted = dict.fromkeys(weighted, math.nan)
+        used = _included_index(mine)
+        weighted = _weighted_estimates(y[used], w[used], None if e is None else e[used])
         rows.append({
             "site": label, "n": arms.n, "n_treated": arms.n1, "n_control": arms.n0, "n_included": n_inc,
             "rate_declared": rate_declared, "rate_realized": arms.n1 / arms.n, "binom_p": binom_p,

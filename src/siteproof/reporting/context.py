@@ -10,6 +10,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .figures import Interval
+from .document import Verdict
 from .formatting import as_float, effect_decimals, finite, fmt, fmt_ci
 
 
@@ -78,11 +79,49 @@ class RunView:
         return f"{fmt(first, d)} → {fmt(second, d)}"
 
 
+def plan_note(run: RunView) -> str:
+    """The footnote that states the locked plan: alpha, multiplicity, the margin of each family, its hash."""
+    plan = run.card.get("plan") or {}
+    rules = plan.get("margin_rules") or {}
+    margins = "; ".join(f"{family}: {text}" for family, text in rules.items())
+    return (f"Locked analysis plan (sha256 {str(plan.get('sha256', '—'))[:12]}…): α = {plan.get('alpha', '—')}, "
+            f"{plan.get('multiplicity', '—')} adjustment within each claim family (difference and equivalence "
+            f"p-values alike), primary claims {', '.join(plan.get('primary') or []) or '—'}; margins — {margins}. "
+            "The naive difference in means is a reference, adjusted with no other claim and never primary.")
+
+
+def deviation_texts(run: RunView) -> list[str]:
+    """One sentence per deviation from the locked plan (shown in red wherever verdicts are shown)."""
+    return [f"Deviation from the locked analysis plan: {d.get('field')} {d.get('planned')} → {d.get('used')}."
+            for d in (run.card.get("plan") or {}).get("deviations") or []]
+
+
+def verdict_rows(run: RunView) -> dict[str, dict]:
+    """The scorecard's verdicts table keyed by claim id."""
+    return {r["claim"]: r for r in run.card.get("verdicts") or []}
+
+
+def adjusted_word(run: RunView, claim: str, raw: Any) -> str:
+    """The claim's multiplicity-adjusted verdict (the one every summary counts); ``raw`` if it has no row."""
+    row = verdict_rows(run).get(claim)
+    return str(row["verdict_adjusted"]) if row else str(raw or "")
+
+
+def verdict_cell(run: RunView, claim: str, raw: Any, note: str = "") -> Verdict:
+    """A verdict cell: the adjusted verdict, with the unadjusted one beside it when they differ."""
+    word = adjusted_word(run, claim, raw)
+    notes = [note] if note else []
+    if raw and str(raw) != word:
+        notes.append(f"unadjusted: {raw}")
+    return Verdict(word, "; ".join(notes))
+
+
 def margin_note(run: RunView) -> str:
     """The footnote that states δ and where it came from."""
     source = run.study.get("margin_source") or "user-set or default"
-    return (f"δ = {run.num(run.margin)} {run.unit} is the equivalence margin — {source}; a difference smaller "
-            "than δ is treated as unimportant.")
+    return (f"δ = {run.num(run.margin)} {run.unit} is the equivalence margin of the average-effect family — "
+            f"{source}; a difference smaller than δ is treated as unimportant. Rule gains and ranking contrasts use "
+            "min(δ, half their blind value) and BLP β₂ its own slope-scale margin (column 'margin' of the verdicts).")
 
 
 def paired_note() -> str:

@@ -133,7 +133,8 @@ class FigureBlock:
 
 @dataclass(frozen=True)
 class Text:
-    """A paragraph; ``kind`` is ``note`` (small print), ``absent`` (a part that was not run) or ``plain``."""
+    """A paragraph; ``kind`` is ``note`` (small print), ``absent`` (a part that was not run), ``deviation`` (a
+    departure from the locked analysis plan, shown in red and bold) or ``plain``."""
 
     text: str
     kind: str = "plain"
@@ -143,6 +144,8 @@ class Text:
         return f"<p{cls}>{_esc(self.text)}</p>"
 
     def markdown(self) -> str:
+        if self.kind == "deviation":
+            return f"**{self.text}**"
         return f"_{self.text}_" if self.kind != "plain" else self.text
 
 

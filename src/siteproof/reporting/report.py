@@ -21,11 +21,11 @@ from pathlib import Path
 
 from ..blind.claims import Claims, read_claims
 from ..core.errors import SiteproofError
-from ..core.interpret import count_words, headline_ate_verdict, verdict_note
+from ..core.interpret import count_words, verdict_note
 from ..core.outputs import atomic_write_bytes, atomic_write_text
 from ..unmask.scorecard import Scorecard, ScorecardRecord
-from .context import RunView, margin_note
-from .document import FIGURE_DIR, Document, Table
+from .context import RunView, deviation_texts, margin_note, plan_note
+from .document import FIGURE_DIR, Document, Table, Text
 from .sections_design import overlap_section, study_section
 from .sections_effects import average_section, sites_section
 from .sections_heterogeneity import heterogeneity_section
@@ -103,23 +103,28 @@ def build_document(claims: dict, scorecard: dict) -> Document:
     title = f"siteproof report — {name}" if name else f"siteproof report — {run.outcome}"
     sections = [build(run) for build in BUILDERS]
     assert [s.key for s in sections] == [k for k, _ in SECTIONS]
+    deviations = [Text(text, "deviation") for text in deviation_texts(run)]
+    sections[0].parts[:0] = deviations
     headline = scorecard.get("headline") or "Blind claims scored against the sites' randomization."
     return Document(title, headline, _summary_table(run), sections)
 
 
 def _summary_table(run: RunView) -> Table:
-    """Verdicts at a glance: every headline claim class with its count of verdicts."""
-    ate = [headline_ate_verdict(str(r.get("verdict", "")), (r.get("same_estimand") or {}).get("verdict"))
-           for r in run.card.get("ate") or []]
-    rows = [
-        ["average effect (ATE estimators)", len(ate), count_words(ate)],
-        ["effect rankings (AUTOC of each CATE model)", len(run.card.get("cate") or []),
-         count_words(c.get("verdict", "") for c in run.card.get("cate") or [])],
-        ["treatment rules (gain over random allocation)", len(run.card.get("rules") or []),
-         count_words(r.get("verdict", "") for r in run.card.get("rules") or [])],
-    ]
-    notes = [margin_note(run), verdict_note(),
+    """Verdicts at a glance: every headline claim class with its count of adjusted verdicts."""
+    verdicts = run.card.get("verdicts") or []
+
+    def words(member) -> list[str]:  # noqa: ANN001
+        return [str(r["verdict_adjusted"]) for r in verdicts if member(r["claim"])]
+
+    groups = (("average effect (ATE estimators)", lambda c: c.startswith("ate.")),
+              ("effect rankings (AUTOC of each CATE model)", lambda c: c.startswith("cate.") and c.endswith(".autoc")),
+              ("treatment rules (gain over random allocation)", lambda c: c.startswith("rule.")),
+              ("per-site effects (each CATE model, each site)", lambda c: c.startswith("site_ate.")))
+    rows = [[label, len(words(member)), count_words(words(member))] for label, member in groups if words(member)]
+    notes = [margin_note(run), plan_note(run), verdict_note(),
+             "Counts are of the multiplicity-adjusted verdicts (scorecard.json 'verdicts'); the naive difference in "
+             "means is counted with the estimators but never in the headline.",
              "The overlap-weighted estimator is counted by its comparison with the design-based overlap-weighted effect "
-             "(the same estimand)."]
+             "(the same estimand)."] + deviation_texts(run)
     return Table("Verdicts at a glance", ["claims", "number scored", "verdicts"], rows, notes, text=(0, 2))
 

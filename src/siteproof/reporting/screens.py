@@ -161,6 +161,8 @@ def scorecard_renderables(scorecard: Scorecard) -> list:
             f"{_num(scorecard.oracle.estimate)}, naive {_num(scorecard.naive.estimate)}.",
             style="dim",
         ),
+        *[Text(f"Deviation from the locked analysis plan: {d['field']} {d['planned']} → {d['used']}.", style="bold red")
+          for d in scorecard.plan.get("deviations", [])],
         _ate_table(scorecard, unit),
     ]
     if scorecard.cate:
@@ -176,29 +178,53 @@ def _ate_table(scorecard: Scorecard, unit: str) -> Table:
     t = _table(
         f"Average effect ({unit} units): each blind estimator vs the pooled design-based ATE",
         [("estimator", "left"), ("blind", "right"), ("design", "right"), ("D ± 95% CI", "right"),
-         ("bias\nred. %", "right"), ("verdict", "left")],
+         ("bias red. %\n[95% CI]", "right"), ("verdict", "left"), ("adjusted", "left")],
     )
+    rows = _rows(scorecard)
     for row in scorecard.ate:
         c = row.comparison
+        claim = rows.get(f"ate.{row.estimator}", {})
         name = row.estimator + (" (ATO)" if row.same_estimand is not None else "")
-        t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _num(row.percent_bias_reduction), _v(c.verdict))
-        if row.same_estimand is not None:
+        if row.same_estimand is None:
+            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _pbr(claim), _v(c.verdict),
+                      _v(claim.get("verdict_adjusted", "")))
+        else:
             same = row.same_estimand
-            t.add_row("  vs design ATO", _num(same.blind), _num(same.design), _diff(same), "", _v(same.verdict))
+            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _pbr(claim), _v(c.verdict), "—")
+            t.add_row("  vs design ATO", _num(same.blind), _num(same.design), _diff(same), "", _v(same.verdict),
+                      _v(claim.get("verdict_adjusted", "")))
     return t
+
+
+def _rows(scorecard: Scorecard) -> dict[str, dict]:
+    """The verdicts table keyed by claim id."""
+    return {r["claim"]: r for r in scorecard.verdicts}
+
+
+def _pbr(row: dict) -> str:
+    """Percent bias reduction with its 95 % CI; 'n.m.' (not meaningful) when the naive D is not distinguishable
+    from 0."""
+    pbr = row.get("percent_bias_reduction")
+    if not pbr:
+        return ""
+    if not pbr.get("meaningful"):
+        return "n.m."
+    return f"{fmt(pbr['estimate'], 0)} {fmt_ci(pbr['ci'], 0)}"
 
 
 def _cate_table(scorecard: Scorecard, unit: str) -> Table:
     t = _table(
         f"Effect rankings: AUTOC ({unit} units) and BLP β₂ (ideal 1), blind vs design scores",
         [("model", "left"), ("AUTOC\nblind", "right"), ("AUTOC\ndesign", "right"), ("D ± 95% CI", "right"),
-         ("verdict", "left"), ("β₂ blind/\ndesign", "right"), ("heter-\nogeneity", "left")],
+         ("verdict", "left"), ("adjusted", "left"), ("β₂ blind/\ndesign", "right"), ("heter-\nogeneity", "left")],
     )
+    rows = _rows(scorecard)
     for row in scorecard.cate:
         a, b2 = row.autoc, row.beta2
         beta = f"{_num(b2.blind, 2)}/{_num(b2.design, 2)}" if b2 is not None else "—"
         status = row.heterogeneity["status"]
-        t.add_row(row.model, _num(a.blind), _num(a.design), _diff(a), _v(a.verdict), beta,
+        adjusted = rows.get(f"cate.{row.model}.autoc", {}).get("verdict_adjusted", "")
+        t.add_row(row.model, _num(a.blind), _num(a.design), _diff(a), _v(a.verdict), _v(adjusted), beta,
                   HETEROGENEITY_SHORT.get(status, status))
     return t
 
@@ -212,8 +238,9 @@ def _rules_table(scorecard: Scorecard, unit: str) -> Table:
     t = _table(
         f"Treatment rules: gain over random allocation at the same treated share ({unit} units)",
         [("rule", "left"), ("treat\n%", "right"), ("gain\nblind", "right"), ("gain\ndesign", "right"),
-         ("D ± 95% CI", "right"), ("verdict", "left"), ("sites\n+", "right")],
+         ("D ± 95% CI", "right"), ("verdict", "left"), ("adjusted", "left"), ("sites\n+", "right")],
     )
+    rows = _rows(scorecard)
     t.caption = (f"{len(shown)} of {len(scorecard.rules)} rules shown; the other budget rules are in "
                  "scorecard.json and the report.")
     t.caption_justify = "left"
@@ -222,7 +249,7 @@ def _rules_table(scorecard: Scorecard, unit: str) -> Table:
         agree, total = row.sites_agreeing
         name = row.rule if row.has_contrast else f"{row.rule}*"
         t.add_row(name, fmt(100 * row.treated_share, 0), _num(g.blind), _num(g.design), _diff(g),
-                  _v(row.verdict), f"{agree}/{total}")
+                  _v(row.verdict), _v(rows.get(f"rule.{row.rule}", {}).get("verdict_adjusted", "")), f"{agree}/{total}")
     return t
 
 
@@ -258,9 +285,14 @@ def _context_text(scorecard: Scorecard) -> Text:
 def _footnote(scorecard: Scorecard, unit: str) -> Text:
     return Text(
         "D = blind − design, on the same units; its 95% CI uses the SE of the paired per-unit scores (AUTOC: "
-        f"shared bootstrap half-samples). δ = {_num(scorecard.margin)} {unit} units is the equivalence margin "
-        f"(β₂: δ/sd(τ̂)). {verdict_note()} Bias red. = 100·(1 − |D|/|D_naive|) "
-        "(Shadish, Clark & Steiner 2008). ATO = overlap-weighted effect, a different estimand from the ATE. "
+        f"shared bootstrap half-samples). δ = {_num(scorecard.margin)} {unit} units is the equivalence margin of "
+        "the average effects; rule gains and rankings use min(δ, half their blind value), β₂ its own margin "
+        f"{_num(scorecard.plan.get('margins', {}).get('beta2'))} (slope scale) — all fixed in the locked plan "
+        f"(sha256 {str(scorecard.plan.get('sha256', ''))[:12]}…). {verdict_note()} Adjusted = verdict from p-values "
+        f"adjusted within each claim family ({scorecard.plan.get('multiplicity', '')}); the naive estimate is the "
+        "unadjusted reference. Bias red. = 100·(1 − |D|/|D_naive|) "
+        "(Shadish, Clark & Steiner 2008) with its delta-method 95% CI; n.m. = the naive D is not distinguishable "
+        "from 0. ATO = overlap-weighted effect, a different estimand from the ATE. "
         f"Heterogeneity (β₂ > 0 or AUTOC > 0, one-sided 5%): {_status_note()}. Sites + = sites "
         "whose design gain has the sign of the blind gain / sites where the rule splits the units; * = the rule "
         "treats everyone or no one (gain 0 by construction), so its value is compared. Design values use the "

@@ -8,7 +8,7 @@ from typing import Any
 
 from ..core.interpret import ALPHA, Q_ALPHA, VERDICT_READING, count_words, estimator_label, verdict_note
 from . import figures
-from .context import RunView, interval, margin_note, paired_note
+from .context import RunView, adjusted_word, interval, margin_note, paired_note, plan_note, verdict_rows
 from .document import FigureBlock, Section, Table, Text, Verdict
 from .figures import Interval
 from .formatting import as_float, finite, fmt, fmt_ci, fmt_p
@@ -26,13 +26,14 @@ def average_section(run: RunView) -> Section:
     for label, r in zip(labels, rows):
         blind.append(interval(label, r.get("blind")))
         diffs.append(interval(label, r.get("difference")))
-        verdicts.append(str(r.get("verdict", "")))
-        own.append(math.nan)
         same = r.get("same_estimand")
+        verdicts.append(str(r.get("verdict", "")) if same else adjusted_word(run, f"ate.{r.get('estimator')}",
+                                                                              r.get("verdict")))
+        own.append(math.nan)
         if same:
             blind.append(interval(f"{label}, same estimand", r.get("blind")))
             diffs.append(interval(label, same.get("difference")))
-            verdicts.append(str(same.get("verdict", "")))
+            verdicts.append(adjusted_word(run, f"ate.{r.get('estimator')}", same.get("verdict")))
             own.append(as_float(same.get("design")))
     fig = figures.average_effect_figure(blind, interval("design", design), diffs, verdicts, run.margin, run.unit,
                                         own_design=own)
@@ -49,23 +50,31 @@ def average_section(run: RunView) -> Section:
 
 def _ate_table(run: RunView, rows: list[dict], labels: list[str]) -> Table:
     table_rows = []
+    rows_by_claim = verdict_rows(run)
     for label, r in zip(labels, rows):
         b, dif = r.get("blind") or {}, r.get("difference") or {}
+        claim = f"ate.{r.get('estimator')}"
+        same = r.get("same_estimand")
+        row = rows_by_claim.get(claim) or {}
+        adjusted = "—" if same else Verdict(adjusted_word(run, claim, r.get("verdict")))
         table_rows.append([label, str(r.get("estimand", "ATE")), run.est_ci(b), run.est_ci(dif),
                            run.ci(r.get("equivalence_ci")), fmt_p(r.get("p_value")), fmt_p(r.get("p_equivalence")),
-                           fmt(r.get("percent_bias_reduction"), 0), Verdict(str(r.get("verdict", "")))])
-        same = r.get("same_estimand")
+                           "—" if same else fmt_p(row.get("p_equivalence_adjusted")), _pbr_text(row),
+                           Verdict(str(r.get("verdict", ""))), adjusted])
         if same:
             sd = same.get("difference") or {}
             table_rows.append([f"{label} vs the design-based ATO {run.num(same.get('design'))}", "ATO", run.num(same.get("blind")), run.est_ci(sd),
                                run.ci(same.get("equivalence_ci")), fmt_p(same.get("p_value")),
-                               fmt_p(same.get("p_equivalence")), "—", Verdict(str(same.get("verdict", "")))])
+                               fmt_p(same.get("p_equivalence")), fmt_p(row.get("p_equivalence_adjusted")), "—",
+                               Verdict(str(same.get("verdict", ""))),
+                               Verdict(adjusted_word(run, claim, same.get("verdict")))])
     design, oracle = run.card.get("design_ate") or {}, run.card.get("design_oracle_aipw") or {}
     u = run.unit
     return Table(
         f"Blind estimators against the pooled design-based effect ({u})",
         ["estimator", "estimand", f"blind estimate [95 % CI] ({u})", f"D = blind − design [95 % CI] ({u})",
-         f"90 % CI of D ({u})", "p (D = 0)", "p (TOST, |D| ≥ δ)", "bias reduction (%)", "verdict"],
+         f"90 % CI of D ({u})", "p (D = 0)", "p (TOST, |D| ≥ δ)", "p (TOST) adjusted",
+         "bias reduction (%) [95 % CI]", "verdict", "verdict (adjusted)"],
         table_rows,
         [f"Design-based pooled effect Σ_s (n_s/n)·DiM_s over the included sites: {run.num(design.get('estimate'))} "
          f"(SE {run.num(design.get('se'))}, 95 % CI {run.ci(design.get('ci'))}) {u}. Oracle AIPW with the known "
@@ -74,7 +83,12 @@ def _ate_table(run: RunView, rows: list[dict], labels: list[str]) -> Table:
          "p (TOST): the larger of the two one-sided p-values for |D| ≥ δ (Schuirmann 1987); equivalence when it is "
          f"below {ALPHA:g}, i.e. when the 90 % CI of D lies inside ±δ.",
          "Bias reduction = 100·(1 − |D| / |D_naive|) (Shadish, Clark & Steiner 2008): 100 = all of the naive "
-         "estimator's bias removed, 0 = none, negative = worse than naive.",
+         "estimator's bias removed, 0 = none, negative = worse than naive; its 95 % CI is the delta-method interval "
+         "from the joint per-unit scores. It is shown as 'not meaningful' when the naive D's 95 % CI includes 0 "
+         "(no naive bias to reduce).",
+         plan_note(run),
+         "Verdict (adjusted): from the p-values adjusted within the average-effect family (the naive estimator, the "
+         "reference, is not adjusted); it is the verdict every summary counts.",
          "The overlap-weighted estimator targets the overlap-weighted effect (ATO), another estimand; its second row "
          "compares it with the design-based ATO (same estimand).",
          verdict_note()],
@@ -87,17 +101,34 @@ def _average_reading(run: RunView, rows: list[dict]) -> tuple[str, str]:
     name = estimator_label(primary.get("estimator"))
     b, dif = primary.get("blind") or {}, primary.get("difference") or {}
     design = run.card.get("design_ate") or {}
-    verdict = str(primary.get("verdict", ""))
+    verdict = adjusted_word(run, f"ate.{primary.get('estimator')}", primary.get("verdict"))
     how = VERDICT_READING.get(verdict, "was scored").format(margin=run.num(run.margin))
     first = (f"The blind {name} estimate {run.num(b.get('estimate'))} (95 % CI {run.ci(b.get('ci'))}) against the "
              f"design-based {run.num(design.get('estimate'))}: the paired difference {run.num(dif.get('estimate'))} "
              f"(95 % CI {run.ci(dif.get('ci'))}) {how} — {verdict}.")
-    second = f"Across the {len(rows)} blind estimators: {count_words(str(r.get('verdict', '')) for r in rows)}"
+    words = [adjusted_word(run, f"ate.{r.get('estimator')}", r.get("verdict")) for r in rows]
+    second = f"Across the {len(rows)} blind estimators (adjusted verdicts): {count_words(words)}"
     naive = next((r for r in rows if r.get("estimator") == "naive"), None)
-    if naive is not None and finite(primary.get("percent_bias_reduction")) and primary is not naive:
-        second += (f"; the naive difference in means was off by {run.num((naive.get('difference') or {}).get('estimate'))}"
-                   f" and {name} removed {fmt(primary.get('percent_bias_reduction'), 0)} % of that bias")
+    pbr = verdict_rows(run).get(f"ate.{primary.get('estimator')}", {}).get("percent_bias_reduction") or {}
+    if naive is not None and primary is not naive:
+        off = run.num((naive.get("difference") or {}).get("estimate"))
+        if pbr.get("meaningful") and finite(pbr.get("estimate")):
+            second += (f"; the naive difference in means was off by {off} and {name} removed "
+                       f"{fmt(pbr.get('estimate'), 0)} % of that bias (95 % CI {fmt_ci(pbr.get('ci'), 0)})")
+        else:
+            second += (f"; the naive difference in means was off by {off}, not distinguishable from 0, so no bias "
+                       "reduction is reported")
     return first, second + "."
+
+
+def _pbr_text(row: dict) -> str:
+    """Percent bias reduction with its CI, or why it is not shown."""
+    pbr = row.get("percent_bias_reduction") or {}
+    if not finite(pbr.get("estimate")):
+        return "—"
+    if not pbr.get("meaningful"):
+        return "not meaningful"
+    return f"{fmt(pbr.get('estimate'), 0)} {fmt_ci(pbr.get('ci'), 0)}"
 
 
 # ----------------------------------------------------------------------------------------------------------

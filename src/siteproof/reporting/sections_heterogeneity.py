@@ -8,8 +8,8 @@ from typing import Any, Sequence
 
 from ..core.interpret import CONFIRMED, HETEROGENEITY_ALPHA, HETEROGENEITY_MEANING, count_words, verdict_note
 from . import figures
-from .context import RunView, interval, margin_note
-from .document import FigureBlock, Heading, Section, Table, Text, Verdict
+from .context import RunView, adjusted_word, interval, margin_note, verdict_cell
+from .document import FigureBlock, Heading, Section, Table, Text
 from .figures import Curve, Interval
 from .formatting import as_float, finite
 
@@ -125,8 +125,9 @@ def _cate_table(run: RunView, names: list[str], models: list[dict]) -> Table:
         a, q = c.get("autoc") or {}, c.get("qini") or {}
         b2 = (c.get("blp") or {}).get("beta2") or {}
         rows.append([n, run.num(c.get("tau_sd")), run.pair(a.get("blind"), a.get("design")),
-                     run.est_ci(a.get("difference")), Verdict(str(a.get("verdict", ""))),
-                     run.pair(q.get("blind"), q.get("design")), Verdict(str(q.get("verdict", ""))),
+                     run.est_ci(a.get("difference")), verdict_cell(run, f"cate.{c.get('model')}.autoc", a.get("verdict")),
+                     run.pair(q.get("blind"), q.get("design")),
+                     verdict_cell(run, f"cate.{c.get('model')}.qini", q.get("verdict")),
                      run.pair(b2.get("blind"), b2.get("design"), 2),
                      str((c.get("heterogeneity") or {}).get("status", "—"))])
     return Table(
@@ -151,12 +152,14 @@ def _gates_table(run: RunView, names: list[str], models: list[dict]) -> Table:
         for g in c.get("gates") or []:
             dif = g.get("difference") or {}
             rows.append([n, g.get("group"), run.num(g.get("blind")), run.num(g.get("design")),
-                         run.num(dif.get("estimate")), run.ci(dif.get("ci")), Verdict(str(g.get("verdict", "")))])
+                         run.num(dif.get("estimate")), run.ci(dif.get("ci")),
+                         verdict_cell(run, f"cate.{c.get('model')}.gate{g.get('group')}", g.get("verdict"))])
         tb = c.get("top_minus_bottom") or {}
         if tb:
             dif = tb.get("difference") or {}
             rows.append([n, "top − bottom", run.num(tb.get("blind")), run.num(tb.get("design")),
-                         run.num(dif.get("estimate")), run.ci(dif.get("ci")), Verdict(str(tb.get("verdict", "")))])
+                         run.num(dif.get("estimate")), run.ci(dif.get("ci")),
+                         verdict_cell(run, f"cate.{c.get('model')}.top_bottom", tb.get("verdict"))])
     return Table(
         f"GATES: group effects, blind against design ({run.unit})",
         ["model", "group of τ̂", "blind", "design", "D = blind − design", "95 % CI of D", "verdict"], rows,
@@ -173,7 +176,7 @@ def _heterogeneity_reading(run: RunView, names: list[str], models: list[dict]) -
     first = (f"Re-scored with the known rates, {len(found)} of {len(names)} models show real heterogeneity "
              f"(β₂ > 0 or AUTOC > 0 at one-sided 5 %){': ' + ', '.join(found) if found else ''}; the blind claim of "
              f"heterogeneity is confirmed for {len(confirmed)} ({', '.join(f'{n}: {s}' for n, s in status.items())}).")
-    verdicts = [str((c.get("autoc") or {}).get("verdict", "")) for c in models]
+    verdicts = [adjusted_word(run, f"cate.{c.get('model')}.autoc", (c.get("autoc") or {}).get("verdict")) for c in models]
     losses = {n: (c.get("r_loss") or {}).get("design") or {} for n, c in zip(names, models)}
     scored = {n: loss for n, loss in losses.items() if finite(loss.get("estimate"))}
     second = f"AUTOC blind against design: {count_words(verdicts)}"

@@ -5,9 +5,9 @@ from __future__ import annotations
 import platform
 
 from .. import __version__
-from .context import RunView
-from .document import Caution, Facts, Heading, Section, Table
-from .formatting import fmt
+from .context import RunView, plan_note
+from .document import Caution, Facts, Heading, Section, Table, Verdict
+from .formatting import fmt, fmt_p
 
 
 CAUTION = (
@@ -33,6 +33,8 @@ REFERENCES = (
      "I²; Higgins, Thompson & Spiegelhalter (2009) prediction intervals"),
     ("Paired comparison, verdicts", "Schuirmann (1987) two one-sided tests; Tryon & Lewis (2008) four "
      "verdict classes; Shadish, Clark & Steiner (2008) percent bias reduction"),
+    ("Multiplicity", "Holm (1979) step-down; Benjamini & Hochberg (1995) false discovery rate"),
+    ("Margins", "Wellek (2010) and Lakens (2017) equivalence testing; FDA (2016) non-inferiority margins"),
     ("Within-study comparisons", "Cook, Shadish & Wong (2008); Steiner & Wong (2018); Gentzel, Pruthi & Jensen "
      "(2021) observational samples from RCTs"),
     ("Colours", "Okabe & Ito (2008) colour-universal-design palette"),
@@ -80,11 +82,35 @@ def methods_section(run: RunView) -> Section:
         ["stage", "seconds"], [[k, fmt(v, 2)] for k, v in timings.items()],
         ["Wall-clock seconds of each stage on the machine that ran it; they vary from run to run."],
     )
-    parts = [Caution(CAUTION), methods, Heading("Software, seeds and input"), Facts(facts), timing_table]
+    parts = [Caution(CAUTION), methods, _verdicts_table(run), Heading("Software, seeds and input"), Facts(facts),
+             timing_table]
     reading = (
-        f"Every verdict above uses the margin δ = {run.num(run.margin)} {run.unit} and paired differences on the same "
-        "units; the methods and their sources are listed below.",
+        f"The average-effect verdicts above use the margin δ = {run.num(run.margin)} {run.unit}, the other claims "
+        "their own family's margin (all locked in the blind plan and listed below), and paired differences on the "
+        "same units; the methods and their sources are listed below.",
         f"Rerunning with the same input (fingerprint {str(run.claims.get('fingerprint', '—'))[:12]}…) and seed "
         f"{settings.get('seed', '—')} reproduces every number except the timings.",
     )
     return Section("methods", "Methods and references", reading, parts)
+
+
+def _verdicts_table(run: RunView) -> Table:
+    """Every scored claim with its margin, equivalence bound, raw and adjusted p-values and verdicts."""
+    rows = []
+    for r in run.card.get("verdicts") or []:
+        diff = r.get("difference") or {}
+        rows.append([r.get("claim"), r.get("family"), "yes" if r.get("primary") else "", run.est_ci(diff),
+                     run.num(r.get("margin")), run.num(r.get("equivalence_bound")),
+                     f"{fmt_p(r.get('p_difference'))} / {fmt_p(r.get('p_difference_adjusted'))}",
+                     f"{fmt_p(r.get('p_equivalence'))} / {fmt_p(r.get('p_equivalence_adjusted'))}",
+                     Verdict(str(r.get("verdict", ""))), Verdict(str(r.get("verdict_adjusted", "")))])
+    return Table(
+        "Every verdict: raw and adjusted for multiplicity (within each family; primary claims apart; naive never "
+        "adjusted)",
+        ["claim", "family", "primary", "D = blind − design [95 % CI]", "margin", "equivalence bound",
+         "p (D = 0) raw / adjusted", "p (TOST) raw / adjusted", "verdict", "verdict (adjusted)"],
+        rows,
+        [plan_note(run), "Equivalence bound: the smallest margin at which D would be called equivalent, "
+         "max(|low|, |high|) of its 90 % CI. Units: those of each claim (outcome units; β₂ is a slope)."],
+        text=(0, 1, 2),
+    )

@@ -8,8 +8,8 @@ from typing import Any
 
 from ..core.interpret import count_words, verdict_note
 from . import figures
-from .context import RunView, interval, margin_note
-from .document import FigureBlock, Heading, Preformatted, Section, Table, Text, Verdict
+from .context import RunView, adjusted_word, interval, margin_note, verdict_cell
+from .document import FigureBlock, Heading, Preformatted, Section, Table, Text
 from .formatting import as_float, finite, fmt, fmt_pct
 
 
@@ -58,7 +58,8 @@ def _rules_table(run: RunView, rules: list[dict]) -> Table:
         rows.append([r.get("rule"), fmt_pct(r.get("treated_share")),
                      run.pair((claimed.get("value") or {}).get("estimate"), (oracle.get("value") or {}).get("estimate")),
                      run.est_ci(claimed.get("gain")), run.est_ci(oracle.get("gain")), run.est_ci(gain.get("difference")),
-                     Verdict(str(r.get("verdict", "")), "" if r.get("verdict_on", "gain") == "gain" else "on value"),
+                     verdict_cell(run, f"rule.{r.get('rule')}", r.get("verdict"),
+                                  "" if r.get("verdict_on", "gain") == "gain" else "on value"),
                      f"{r.get('sites_agreeing', '—')} of {r.get('sites_with_contrast', '—')}"])
     return Table(
         f"Learned rules: value and gain, blind against design ({run.unit})",
@@ -115,9 +116,10 @@ def _rules_reading(run: RunView, rules: list[dict]) -> tuple[str, str]:
     oracle = (best.get("design_oracle_aipw") or {}).get("gain") or {}
     first = (f"The rule with the largest blind gain is {best.get('rule')} (treats {fmt_pct(best.get('treated_share'))}; "
              f"gain {run.num(claimed.get('estimate'))}, 95 % CI {run.ci(claimed.get('ci'))}); with the known rates its "
-             f"gain is {run.num(oracle.get('estimate'))} (95 % CI {run.ci(oracle.get('ci'))}) — {best.get('verdict', '—')}.")
+             f"gain is {run.num(oracle.get('estimate'))} (95 % CI {run.ci(oracle.get('ci'))}) — "
+             f"{adjusted_word(run, 'rule.' + str(best.get('rule')), best.get('verdict', '—'))}.")
     opposite = sum(1 for r in rules for row in r.get("by_site") or [] if row.get("opposite_and_significant"))
-    second = (f"Gain verdicts over {len(rules)} rules: {count_words(str(r.get('verdict', '')) for r in rules)}; "
+    second = (f"Gain verdicts over {len(rules)} rules: {count_words(adjusted_word(run, 'rule.' + str(r.get('rule')), r.get('verdict')) for r in rules)}; "
               f"{opposite} rule-site pair(s) show a significant gain of the opposite sign.")
     return first, second
 

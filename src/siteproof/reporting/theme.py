@@ -49,6 +49,7 @@ BASE_FONT = 10.5
 SVG_HASH_SALT = "siteproof"
 PNG_DPI = 144
 
+DEVIATION_RED = "#b2182b"  # a deviation from the locked analysis plan (always also said in words)
 VERDICT_STYLE = {  # CSS declarations of each verdict's bordered word in report.html
     EQUIVALENT: "border-style: solid;",
     DIFFERENT: "border-width: 2px; font-weight: 700;",
@@ -149,6 +150,7 @@ p.reading {{ border-left: 4px solid var(--blind); background: #fff; padding: 8px
 p.reading b {{ font-weight: 600; }}
 p.note, .footnote {{ font-size: 13.5px; color: var(--muted); }}
 p.absent {{ font-style: italic; color: var(--muted); background: var(--panel); padding: 8px 12px; }}
+p.deviation {{ color: {DEVIATION_RED}; font-weight: 700; border-left: 4px solid {DEVIATION_RED}; padding: 6px 12px; }}
 figure {{ margin: 10px 0 18px; }}
 figure svg {{ width: 100%; height: auto; display: block; background: #fff; }}
 figcaption {{ font-size: 13.5px; color: var(--muted); margin-top: 4px; }}

@@ -77,7 +77,8 @@ from ..core.errors import SiteproofError, SiteproofWarning
 from ..core.outputs import atomic_write_json, atomic_write_text, check_out_dir
 from ..intake.flags import check_seed
 from ..intake.study import Study, StudySpec, load_study
-from ..unmask.scoring import Scorecard, claim_verdicts, run_unmask
+from ..unmask.scoring import Scorecard, run_unmask
+from ..unmask.verdicts import claim_verdicts
 from .parts import COLUMNS, collect, discard_parts, part_numbers, read_replicates, save_part, verify_parts
 from .scenario import MIN_N, Scenario
 from .simulate import SimulatedTrial, load_design, population_ate, simulate

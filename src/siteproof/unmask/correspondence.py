@@ -17,8 +17,12 @@ never √(SE_blind² + SE_design²).  Given D, its SE and an equivalence margin 
 * four classes (Tryon & Lewis 2008): equivalent and not different → "equivalent"; different and not
   equivalent → "different"; both → "trivially different"; neither → "indeterminate".
 
+The equivalence bound is the smallest margin at which D would be called equivalent:
+max(|lower|, |upper|) of the (1 − 2α) CI of D.
+
 Percent bias reduction (Shadish, Clark & Steiner 2008) compares the bias left by an adjusted estimate with the
-bias of the naive one: PBR = 100·(1 − |adjusted bias| / |naive bias|).
+bias of the naive one: PBR = 100·(1 − |adjusted bias| / |naive bias|), with a delta-method CI from the joint
+per-unit scores of the two paired differences (:func:`percent_bias_reduction_ci`).
 """
 
 from __future__ import annotations
@@ -32,7 +36,7 @@ from scipy import stats
 from ..core.checks import alpha_level, at_least, finite_vector, same_length, standard_error
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate, normal_ci
-from ..core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT, VERDICTS
+from ..core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT
 
 
 @dataclass(frozen=True)
@@ -56,6 +60,11 @@ class Comparison:
     verdict: str
     alpha: float = 0.05
 
+    @property
+    def equivalence_bound(self) -> float:
+        """Smallest margin at which D would be equivalent: max(|lo|, |hi|) of its (1 − 2α) CI."""
+        return float(max(abs(self.equivalence_ci[0]), abs(self.equivalence_ci[1])))
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (non-finite values stay NaN; ``outputs`` writes them as null)."""
         return {
@@ -67,6 +76,7 @@ class Comparison:
             "margin": float(self.margin),
             "p_equivalence": float(self.p_equivalence),
             "equivalence_ci": [float(self.equivalence_ci[0]), float(self.equivalence_ci[1])],
+            "equivalence_bound": self.equivalence_bound,
             "verdict": self.verdict,
             "alpha": float(self.alpha),
         }
@@ -119,8 +129,14 @@ def verdict(difference: float, se: float, margin: float, alpha: float = 0.05) ->
     """
     _check_margin_alpha(margin, alpha)
     _check_se(se)
-    is_different = difference_p_value(difference, se) < alpha
-    is_equivalent = tost_p_value(difference, se, margin) < alpha
+    return verdict_from_p(difference_p_value(difference, se), tost_p_value(difference, se, margin), alpha)
+
+
+def verdict_from_p(p_difference: float, p_equivalence: float, alpha: float = 0.05) -> str:
+    """The four classes from the difference p-value and the TOST p-value (raw or multiplicity-adjusted):
+    different ⇔ p_difference < α, equivalent ⇔ p_equivalence < α (Tryon & Lewis 2008)."""
+    is_different = bool(p_difference < alpha)
+    is_equivalent = bool(p_equivalence < alpha)
     if is_equivalent and is_different:
         return TRIVIALLY_DIFFERENT
     if is_equivalent:
@@ -161,21 +177,29 @@ def percent_bias_reduction(naive_bias: float, adjusted_bias: float) -> float:
     return 100.0 * (1.0 - abs(adjusted_bias) / abs(naive_bias))
 
 
-def default_margin(y: Sequence[float] | np.ndarray) -> float:
-    """δ = 0.1 × SD(y) (n − 1 divisor) — a common practice for an equivalence margin, not a law.
+def percent_bias_reduction_ci(
+    adjusted: Sequence[float] | np.ndarray, naive: Sequence[float] | np.ndarray, level: float = 0.95
+) -> Estimate:
+    """PBR = 100·(1 − |b_a|/|b_n|) with b_a = mean(d_a), b_n = mean(d_n) and its delta-method SE and CI.
 
-    Users should set the margin to the smallest difference that matters in their study.
+    ``adjusted`` and ``naive`` are the per-unit scores d_i = Γ_blind,i − ψ_design,i of the two paired
+    differences (same units).  With gradient g_a = −100·sign(b_a)/|b_n|, g_n = 100·|b_a|·sign(b_n)/b_n², the
+    linearised scores φ_i = PBR + g_a(d_a,i − b_a) + g_n(d_n,i − b_n) have SE sd(φ)/√n (delta method, e.g. van
+    der Vaart 1998, ch. 3).  The approximation needs b_n well away from 0 (and is rough when b_a ≈ 0, where |·|
+    has a kink); NaN when b_n = 0.
     """
-    y = np.asarray(y, dtype=float).ravel()
-    if y.size < 2 or not np.all(np.isfinite(y)):
-        raise SiteproofError(
-            "the default margin needs at least 2 finite outcome values",
-            "drop missing outcomes or set the margin explicitly (--margin)",
-        )
-    margin = 0.1 * float(np.std(y, ddof=1))
-    if margin <= 0.0:
-        raise SiteproofError("the outcome is constant, so 0.1 × SD(outcome) is 0", "set the margin explicitly")
-    return margin
+    d_a = _score_array(adjusted, "adjusted difference")
+    d_n = _score_array(naive, "naive difference")
+    same_length("adjusted scores", d_a, "naive scores", d_n, "pass the paired scores of the same units")
+    b_a, b_n = float(d_a.mean()), float(d_n.mean())
+    pbr = percent_bias_reduction(b_n, b_a)
+    if not np.isfinite(pbr):
+        return Estimate("percent_bias_reduction", pbr, float("nan"), (float("nan"), float("nan")), "PBR (%)")
+    g_a = -100.0 * np.sign(b_a) / abs(b_n)
+    g_n = 100.0 * abs(b_a) * np.sign(b_n) / b_n**2
+    phi = pbr + g_a * (d_a - b_a) + g_n * (d_n - b_n)
+    se = float(np.std(phi, ddof=1) / np.sqrt(phi.size))
+    return Estimate("percent_bias_reduction", pbr, se, normal_ci(pbr, se, level), "PBR (%)", phi)
 
 
 def _difference_estimate(d: float, se: float, alpha: float, scores: np.ndarray | None = None) -> Estimate:
@@ -213,6 +237,6 @@ def _check_margin_alpha(margin: float, alpha: float) -> None:
     if not np.isfinite(margin) or margin <= 0:
         raise SiteproofError(
             f"the equivalence margin must be a positive number, got {margin}",
-            "set --margin to the smallest difference that matters (default: 0.1 × SD of the outcome)",
+            "set --margin to the smallest difference that matters (default: 0.1 × residual SD of the outcome)",
         )
     alpha_level(alpha, upper=0.5)

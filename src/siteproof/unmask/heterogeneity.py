@@ -17,7 +17,13 @@ variances v_i treated as known, i = 1..k.  Weights w_i = 1/v_i (fixed effect) an
   equivalently τ² = Σ w*_i²((y_i − μ̂)² − v_i)/Σ w*_i² + 1/Σ w*_i.  We solve it by a bracketed 1-D root
   search (Brent's method) on [0, U]; if the score is ≤ 0 at τ² = 0 the maximum is on the boundary, τ̂² = 0.
   SE(τ̂²_REML) = √(2 / tr(P*²)) from the expected restricted information.
-* Random-effects mean μ̂ = Σw*_i y_i / Σw*_i, SE = 1/√Σw*_i, 95% Wald CI μ̂ ± 1.96·SE.
+* Random-effects mean μ̂ = Σw*_i y_i / Σw*_i, SE = 1/√Σw*_i, 95% Wald CI μ̂ ± 1.96·SE (``ci="z"``), or the
+  Hartung–Knapp–Sidik–Jonkman interval (``ci="hksj"``; Hartung & Knapp 2001, Sidik & Jonkman 2002):
+      q_HK = Σ w*_i (y_i − μ̂)² / (k − 1),   SE_HK = √(q_HK / Σw*_i),   μ̂ ± t_{k−1, 0.975}·SE_HK,
+  which keeps close to nominal coverage with few sites where the Wald interval is too short
+  (IntHout, Ioannidis & Borm 2014).
+* Sites whose SE is zero or not finite, or whose estimate is not finite, carry no usable weight; they are
+  left out and listed in ``dropped`` as (site, reason).
 * I² (Higgins & Thompson 2002) = 100·τ̂²/(τ̂² + s²) % with the "typical" within-study variance
   s² = (k − 1)·S₁ / (S₁² − S₂), and H² = (τ̂² + s²)/s².  For DL this is exactly max(0, (Q − df)/Q)·100;
   for REML it uses the REML τ̂², so the two methods report different I².
@@ -35,12 +41,13 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
-from ..core.checks import finite_vector, same_length
+from ..core.checks import same_length
 from ..core.errors import SiteproofError
 from ..core.estimates import normal_ci
 from ..core.results import ResultsMixin
 
 METHODS = ("reml", "dl")
+CI_METHODS = ("z", "hksj")
 
 
 @dataclass(frozen=True, repr=False)
@@ -48,7 +55,10 @@ class RandomEffectsResult(ResultsMixin):
     """A random-effects meta-analysis: pooled mean, between-site variance and heterogeneity statistics.
 
     ``i2`` is in percent (Higgins & Thompson 2002) and computed from this method's τ̂² (see module docstring);
-    ``prediction_interval`` is the 95% interval of Higgins, Thompson & Spiegelhalter (2009).
+    ``prediction_interval`` is the 95% interval of Higgins, Thompson & Spiegelhalter (2009) (with the
+    model-based SE 1/√Σw*).  ``se`` and ``ci`` follow ``ci_method``: ``"z"`` (Wald, normal quantile) or
+    ``"hksj"`` (q-scaled SE, t with ``ci_df`` = k − 1 degrees of freedom).  ``dropped`` lists the sites left
+    out as (site, reason); ``k`` counts the sites used.
     """
 
     method: str
@@ -66,11 +76,15 @@ class RandomEffectsResult(ResultsMixin):
     prediction_interval: tuple[float, float]
     fixed_estimate: float
     fixed_se: float
+    ci_method: str = "z"
+    ci_df: float = float("inf")
+    dropped: tuple[tuple[str, str], ...] = ()
     note: str = ""
 
     def _key_numbers(self) -> dict[str, Any]:
-        return {"method": self.method, "k": self.k, "estimate": self.estimate, "se": self.se, "tau2": self.tau2,
-                "i2": self.i2, "q_pvalue": self.q_pvalue}
+        return {"method": self.method, "k": self.k, "estimate": self.estimate, "se": self.se,
+                "ci_method": self.ci_method, "tau2": self.tau2, "i2": self.i2, "q_pvalue": self.q_pvalue,
+                "dropped": len(self.dropped)}
 
     def to_frame(self) -> pd.DataFrame:
         """One row per quantity: pooled mean, τ², Cochran's Q (``statistic``, ``p_value``), I² (%), the 95 %
@@ -104,6 +118,9 @@ class RandomEffectsResult(ResultsMixin):
             "prediction_interval": [self.prediction_interval[0], self.prediction_interval[1]],
             "fixed_estimate": self.fixed_estimate,
             "fixed_se": self.fixed_se,
+            "ci_method": self.ci_method,
+            "ci_df": self.ci_df if np.isfinite(self.ci_df) else None,
+            "dropped": [{"site": site, "reason": reason} for site, reason in self.dropped],
         }
         if self.note:
             out["note"] = self.note
@@ -114,13 +131,17 @@ def random_effects(
     estimates: Sequence[float] | np.ndarray,
     variances: Sequence[float] | np.ndarray,
     method: str = "reml",
+    ci: str = "z",
+    sites: Sequence[Any] | None = None,
 ) -> RandomEffectsResult:
     """Random-effects meta-analysis of k ≥ 2 estimates with known within-site variances.
 
-    ``method`` is ``"reml"`` (Viechtbauer 2005) or ``"dl"`` (DerSimonian & Laird 1986).  Formulas for every
-    reported quantity are in the module docstring and docs/methods-sites-and-verdicts.md.
+    ``method`` is ``"reml"`` (Viechtbauer 2005) or ``"dl"`` (DerSimonian & Laird 1986); ``ci`` is ``"z"``
+    (Wald) or ``"hksj"`` (Hartung & Knapp 2001; Sidik & Jonkman 2002).  ``sites`` labels the estimates
+    (default "0", "1", …) for ``dropped``.  Formulas for every reported quantity are in the module docstring
+    and docs/methods-sites-and-verdicts.md.
     """
-    y, v = _check_inputs(estimates, variances, method)
+    y, v, dropped = _usable_sites(estimates, variances, method, ci, sites)
     k = y.size
     w = 1.0 / v
     fixed_estimate = float(np.sum(w * y) / np.sum(w))
@@ -134,15 +155,19 @@ def random_effects(
         tau2_se = _reml_tau2_se(v, tau2)
     w_star = 1.0 / (v + tau2)
     estimate = float(np.sum(w_star * y) / np.sum(w_star))
-    se = float(1.0 / np.sqrt(np.sum(w_star)))
+    model_se = float(1.0 / np.sqrt(np.sum(w_star)))
     s2 = typical_within_variance(v)
-    pi, note = prediction_interval(estimate, se, tau2, k)
+    pi, note = prediction_interval(estimate, model_se, tau2, k)
+    if ci == "hksj":
+        se, ci_df, interval = hksj_interval(y, w_star, estimate)
+    else:
+        se, ci_df, interval = model_se, float("inf"), normal_ci(estimate, model_se)
     return RandomEffectsResult(
         method=method,
         k=k,
         estimate=estimate,
         se=se,
-        ci=normal_ci(estimate, se),
+        ci=interval,
         tau2=tau2,
         tau2_se=tau2_se,
         q=q,
@@ -153,8 +178,26 @@ def random_effects(
         prediction_interval=pi,
         fixed_estimate=fixed_estimate,
         fixed_se=fixed_se,
+        ci_method=ci,
+        ci_df=ci_df,
+        dropped=dropped,
         note=note,
     )
+
+
+def hksj_interval(
+    y: np.ndarray, w_star: np.ndarray, estimate: float, level: float = 0.95
+) -> tuple[float, float, tuple[float, float]]:
+    """Hartung–Knapp–Sidik–Jonkman SE, df and interval of the random-effects mean.
+
+    q_HK = Σ w*_i (y_i − μ̂)² / (k − 1), SE_HK = √(q_HK / Σ w*_i), CI μ̂ ± t_{k−1, (1+level)/2}·SE_HK
+    (Hartung & Knapp 2001; Sidik & Jonkman 2002; IntHout, Ioannidis & Borm 2014).
+    """
+    df = y.size - 1
+    q_hk = float(np.sum(w_star * (y - estimate) ** 2) / df)
+    se = float(np.sqrt(q_hk / np.sum(w_star)))
+    half = float(stats.t.ppf(0.5 + level / 2, df) * se)
+    return se, float(df), (estimate - half, estimate + half)
 
 
 def dersimonian_laird_tau2(q: float, variances: np.ndarray) -> float:
@@ -225,21 +268,42 @@ def _dl_tau2_se(v: np.ndarray, tau2: float) -> float:
     return float(np.sqrt(2.0 * np.sum(p_sigma * p_sigma.T)) / (s1 - s2 / s1))
 
 
-def _check_inputs(estimates: Any, variances: Any, method: str) -> tuple[np.ndarray, np.ndarray]:
+def drop_reason(estimate: float, variance: float) -> str:
+    """Why a site cannot enter the meta-analysis ("" when it can): a zero or non-finite SE, or a non-finite
+    estimate."""
+    if not np.isfinite(estimate):
+        return "estimate is not finite"
+    if not np.isfinite(variance):
+        return "SE is not finite"
+    if variance == 0:
+        return "SE is zero (no within-site variation in an arm)"
+    return ""
+
+
+def _usable_sites(
+    estimates: Any, variances: Any, method: str, ci: str, sites: Sequence[Any] | None
+) -> tuple[np.ndarray, np.ndarray, tuple[tuple[str, str], ...]]:
+    """The estimates and variances of the usable sites, and the (site, reason) pairs of the others."""
     if method not in METHODS:
         raise SiteproofError(f"unknown random-effects method {method!r}", f"use one of {', '.join(METHODS)}")
+    if ci not in CI_METHODS:
+        raise SiteproofError(f"unknown random-effects interval {ci!r}", f"use one of {', '.join(CI_METHODS)}")
     y = np.asarray(estimates, dtype=float).ravel()
     v = np.asarray(variances, dtype=float).ravel()
     same_length("estimates", y, "variances", v, "pass one within-site variance (squared SE) per site estimate")
-    if y.size < 2:
+    labels = [str(i) for i in range(y.size)] if sites is None else [str(s) for s in sites]
+    same_length("estimates", y, "sites", np.asarray(labels), "pass one site label per site estimate")
+    if np.any(v < 0):
+        raise SiteproofError("within-site variances must not be negative",
+                             "pass squared standard errors as the variances")
+    reasons = [drop_reason(a, b) for a, b in zip(y, v)]
+    keep = np.array([not r for r in reasons], dtype=bool)
+    dropped = tuple((label, r) for label, r in zip(labels, reasons) if r)
+    if keep.sum() < 2:
+        listed = "; ".join(f"{label}: {reason}" for label, reason in dropped)
+        left_out = f" ({len(dropped)} left out: {listed})" if dropped else ""
         raise SiteproofError(
-            f"a random-effects meta-analysis needs at least 2 site estimates, got {y.size}",
-            "include more sites (sites need at least 2 units in each arm to give an estimate)",
+            f"a random-effects meta-analysis needs at least 2 site estimates, got {int(keep.sum())}{left_out}",
+            "include more sites (sites need at least 2 units in each arm and a positive SE to give an estimate)",
         )
-    finite_vector("the site estimates", y, "drop those sites or fix their data")
-    if not np.all(np.isfinite(v)) or np.any(v <= 0):
-        raise SiteproofError(
-            "within-site variances must be finite and strictly positive",
-            "drop sites whose SE is zero, missing or infinite (e.g. sites with a constant outcome in one arm)",
-        )
-    return y, v
+    return y[keep], v[keep], dropped

@@ -13,11 +13,29 @@ With the site hidden, the blind propensity targets the *mixture* e(x) = P(W = 1 
   so even the perfect ê has RMSE √E[Var(e_S | X)] > 0 unless the covariates reveal the site.  We estimate the
   floor from a cross-validated classifier of the site: with p̂_s(x) its out-of-fold class probabilities and
   r_s the site rates, ẽ(x) = Σ_s p̂_s(x)·r_s and floor² ≈ mean_i Σ_s p̂_s(x_i)(r_s − ẽ(x_i))².
+* **The verdict: calibrated and informative.**  The old slope criterion (slope of e_S on ê within 0.1 of
+  1) cannot be met by a good learner: the slope of a noisy but unbiased ê = e(X) + u is diluted to the
+  reliability Var(e)/(Var(e) + Var(u)) < 1 however large n is, while its SE shrinks.  Calibration alone
+  cannot tell a good learner from a useless one either (a constant ê = mean rate is calibrated and has no
+  discrimination; Van Calster et al. 2016, 2019).  So ê is *recovered* when both hold:
+  1. calibration within δ = :data:`CALIBRATION_MARGIN`: the integrated calibration error over the decile
+     bins b of ê, ECE = Σ_b (n_b/n)·|d_b| with d_b = mean e_S − mean ê in b (the binned form of the
+     integrated calibration index of Austin & Steyerberg 2019), has its one-sided 95 % upper bound
+     ECE + z_{0.95}·√(Σ_b (n_b/n)² SE_b²) ≤ δ (an equivalence-style test, Schuirmann 1987; SE_b =
+     sd(e_S in b)/√n_b, the signs of d_b held fixed);
+  2. information: the lower end of the calibration slope's 95 % CI is ≥ :data:`RELIABILITY_MIN`.  The slope
+     is the share of the spread of ê that is real (the reliability above), so ≥ 0.5 says ê has more signal
+     than noise; an ê fit on noise has slope ≈ 0, a constant ê none.
+  The blind target e(X) = E[e_S | X] meets both whenever the covariates carry information on the site.  The
+  verdict certifies a calibrated, informative ê, not the sharpest possible one: read the RMSE beside its floor
+  for that.
 * **How much of the site could the blind side see?**  Cross-validated accuracy of predicting the site from
   the covariates, against the majority share (the accuracy of always guessing the largest site).
 
 References: calibration of propensity models in the sense of a reliability diagram (e.g. Niculescu-Mizil &
-Caruana 2005); random forests (Breiman 2001) for the site classifier; Kish (1965) effective sample size
+Caruana 2005); the calibration hierarchy (Van Calster et al. 2016, J. Clin. Epidemiol. 74:167–176) and
+"calibration: the Achilles heel" (Van Calster et al. 2019, BMC Medicine 17:230); the integrated calibration
+index (Austin & Steyerberg 2019, Stat. Med. 38:4051–4065); Schuirmann (1987) equivalence tests; random forests (Breiman 2001) for the site classifier; Kish (1965) effective sample size
 n_eff = (Σw)²/Σw²; HC2 standard errors (MacKinnon & White 1985; Imbens & Kolesár 2016); McFadden (1974)
 pseudo-R² for the site classifier.
 """
@@ -25,11 +43,12 @@ pseudo-R² for the site classifier.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Sequence
 
 import numpy as np
 import pandas as pd
 import statsmodels.api as sm
+from scipy import stats
 from sklearn.base import ClassifierMixin, clone
 from sklearn.ensemble import RandomForestClassifier
 from sklearn.model_selection import KFold, StratifiedKFold, cross_val_predict
@@ -39,11 +58,13 @@ from ..core.errors import SiteproofError
 from ..blind.average import kish_ess
 from ..core.estimates import Estimate, normal_ci
 from ..core.outputs import json_records
+from ..core.interpret import CALIBRATION_MARGIN, RELIABILITY_MIN, propensity_recovered
 
 RMSE_CAVEAT = (
     "ê targets the mixture e(x) = E[e_S | X = x], not the site rate e_S: even a perfect ê keeps an RMSE of "
-    "√E[Var(e_S | X)] > 0 unless the covariates reveal the site. Judge ê by its calibration (slope of e_S on ê, "
-    "ideal 1) and read the RMSE beside its estimated floor."
+    "√E[Var(e_S | X)] > 0 unless the covariates reveal the site. Judge ê by its calibration (integrated "
+    "calibration error over the deciles of ê, and a calibration slope well above 0) and read the RMSE beside its "
+    "estimated floor."
 )
 WEIGHT_RATIO_QUANTILES = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
 SITE_MODEL_MAX_UNITS = 10_000
@@ -102,6 +123,16 @@ class PropensityRecovery:
     site_prediction: SitePrediction | None
     rates_source: str
 
+    @property
+    def calibration_bound(self) -> float:
+        """Upper 95 % bound of the integrated calibration error of ê (:func:`calibration_bound`)."""
+        return calibration_bound(self.bins)
+
+    @property
+    def recovered(self) -> bool:
+        """The propensity verdict of :func:`propensity_recovered`."""
+        return propensity_recovered(self.calibration_bound, self.calibration_slope.ci)
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary; ``calibration_slope`` and ``rmse`` are top-level keys (scorecard contract)."""
         return {
@@ -116,6 +147,10 @@ class PropensityRecovery:
             "rmse_caveat": RMSE_CAVEAT,
             "weights": self.weights,
             "site_prediction": None if self.site_prediction is None else self.site_prediction.to_dict(),
+            "calibration_bound": self.calibration_bound,
+            "calibration_margin": CALIBRATION_MARGIN,
+            "reliability_min": RELIABILITY_MIN,
+            "recovered": self.recovered,
         }
 
 
@@ -213,6 +248,20 @@ def rmse_floor(proba: np.ndarray, class_rates: np.ndarray) -> float:
     mixture = proba @ rates
     variance = np.sum(proba * (rates[np.newaxis, :] - mixture[:, np.newaxis]) ** 2, axis=1)
     return float(np.sqrt(np.mean(variance)))
+
+
+def calibration_bound(bins: pd.DataFrame) -> float:
+    """ECE + z_{0.95}·√(Σ_b (n_b/n)² SE_b²), ECE = Σ_b (n_b/n)·|d_b| (module docstring).
+
+    d_b = mean e_S − mean ê and SE_b = sd(e_S in b)/√n_b per bin (:func:`calibration_bins`); bins of one
+    unit count with SE 0.  NaN without bins.
+    """
+    if bins.empty:
+        return float("nan")
+    share = bins["n"].to_numpy(dtype=float) / float(bins["n"].sum())
+    se = bins["known_rate_se"].fillna(0.0).to_numpy(dtype=float)
+    ece = float(np.sum(share * np.abs(bins["difference"].to_numpy(dtype=float))))
+    return ece + float(stats.norm.ppf(0.95)) * float(np.sqrt(np.sum(share**2 * se**2)))
 
 
 def weight_comparison(w: np.ndarray, e_hat: np.ndarray, known_rate: np.ndarray) -> dict[str, Any]:

@@ -26,9 +26,11 @@ from .correspondence import Comparison
 from .heterogeneity import RandomEffectsResult
 from .recovery import PropensityRecovery
 from .transport import TransportResult
+from .verdicts import FRAME_COLUMNS as VERDICT_COLUMNS
+from .verdicts import frame_rows
 
 SCHEMA = "siteproof/scorecard"
-VERSION = 1
+VERSION = 2  # 2: the locked plan (``plan``) and the verdicts table (``verdicts``) with adjusted verdicts
 FRAME_COLUMNS = ("claim", "family", "blind", "design", "difference", "se", "ci_low", "ci_high",
                  "statistic", "p_value", "verdict")
 
@@ -50,7 +52,7 @@ class AteComparison(ResultsMixin):
     blind: Estimate
     design: Estimate
     comparison: Comparison
-    percent_bias_reduction: float
+    percent_bias_reduction: Estimate | None
     note: str = ""
     same_estimand: Comparison | None = None
 
@@ -80,7 +82,8 @@ class AteComparison(ResultsMixin):
             "p_equivalence": c.p_equivalence,
             "equivalence_ci": list(c.equivalence_ci),
             "verdict": c.verdict,
-            "percent_bias_reduction": self.percent_bias_reduction,
+            "percent_bias_reduction": None if self.percent_bias_reduction is None
+            else _estimate_dict(self.percent_bias_reduction),
         }
         if self.note:
             out["note"] = self.note
@@ -142,8 +145,8 @@ class CateComparison(ResultsMixin):
                 "blind": None if self.blp_blind is None else self.blp_blind.to_dict(),
                 "design": None if self.blp_design is None else self.blp_design.to_dict(),
                 "beta2": None if self.beta2 is None else self.beta2.to_dict(),
-                "beta2_margin_note": "margin δ/sd(τ̂): β₂·sd(τ̂) is the SD of the best linear predictor "
-                "of the effect, in outcome units",
+                "beta2_margin_note": "β₂ is a calibration slope (ideal 1): its margin is on that scale "
+                "(the locked plan's β₂ margin), whatever the spread of τ̂",
             },
             "autoc": {**self.autoc.to_dict(), "curve": self.toc_curve},
             "qini": self.qini.to_dict(),
@@ -232,7 +235,7 @@ class _ScorecardView(ResultsMixin):
     def _key_numbers(self) -> dict[str, Any]:
         d = self.to_dict()
         primary = next((a for a in d["ate"] if a["estimator"] == "aipw"), None)
-        verdicts = pd.Series([v for v in self.to_frame()["verdict"] if v]).value_counts()
+        verdicts = pd.Series([v for v in self.to_frame()["verdict_adjusted"] if v]).value_counts()
         return {
             "n": d["study"]["n"], "sites": d["study"]["n_sites"], "margin": d["study"]["margin"],
             "aipw_blind": None if primary is None else primary["blind"]["estimate"],
@@ -240,15 +243,14 @@ class _ScorecardView(ResultsMixin):
         }
 
     def to_frame(self) -> pd.DataFrame:
-        """One row per scored claim — every ATE estimator, every CATE model's high−low, GATES, top−bottom,
-        BLP β₂, AUTOC, Qini and R-loss comparison, every rule's value and gain — with columns claim, family,
-        blind, design, difference, se, ci_low, ci_high, statistic (z), p_value, verdict (None where no margin
-        applies)."""
-        d = self.to_dict()
-        rows = [row for a in d["ate"] for row in _ate_rows(a)]
-        rows += [row for c in d["cate"] for row in _cate_rows(c)]
-        rows += [row for r in d["rules"] for row in _rule_rows(r)]
-        return pd.DataFrame(rows, columns=list(FRAME_COLUMNS))
+        """The verdicts table: one row per scored claim (``verdicts`` of scorecard.json, flattened) with
+        columns claim, family, primary, blind, design, difference, se, ci_low, ci_high, margin,
+        equivalence_bound, p_difference(_adjusted), p_equivalence(_adjusted), verdict, verdict_adjusted and
+        the percent bias reduction of ATE rows (pbr, pbr_ci_low, pbr_ci_high; NaN elsewhere)."""
+        frame = pd.DataFrame(frame_rows(self.to_dict()["verdicts"]), columns=list(VERDICT_COLUMNS))
+        numeric = [c for c in VERDICT_COLUMNS if c not in ("claim", "family", "primary", "verdict", "verdict_adjusted")]
+        frame[numeric] = frame[numeric].astype(float)
+        return frame
 
 
 @dataclass(eq=False, repr=False)
@@ -260,6 +262,11 @@ class ScorecardRecord(_ScorecardView):
     def to_dict(self) -> dict[str, Any]:
         """The scorecard.json content, as read."""
         return self.record
+
+    @property
+    def verdicts(self) -> list[dict[str, Any]]:
+        """The verdicts table as read (one dict per scored claim)."""
+        return self.record["verdicts"]
 
 
 @dataclass(eq=False, repr=False)
@@ -281,19 +288,28 @@ class Scorecard(_ScorecardView):
     headline: str
     warnings: list[str] = field(default_factory=list)
     transport: TransportResult | None = None
+    plan: dict[str, Any] = field(default_factory=dict)
+    verdicts: list[dict[str, Any]] = field(default_factory=list)
+    site_verdicts: dict[str, Any] | None = None
+    within_site_balance: dict[str, Any] | None = None
+    reference_agreement: dict[str, Any] | None = None
+    headline_notes: list[str] = field(default_factory=list)
 
     @property
     def margin(self) -> float:
+        """The ATE-family margin δ (outcome units); every claim's own margin is in :attr:`verdicts`."""
         return float(self.study["margin"])
 
     def to_dict(self) -> dict[str, Any]:
-        """The scorecard.json content (schema ``siteproof/scorecard`` version 1)."""
+        """The scorecard.json content (schema ``siteproof/scorecard`` version 2)."""
         return {
             "schema": SCHEMA,
             "version": VERSION,
             "siteproof_version": __version__,
             "headline": self.headline,
             "rates_source": self.rates_source,
+            "plan": self.plan,
+            "verdicts": self.verdicts,
             "study": self.study,
             "sites": json_records(self.sites),
             "design_ate": {**self.design.to_dict(), "estimator": "pooled difference in means by site"},
@@ -307,6 +323,11 @@ class Scorecard(_ScorecardView):
             "heterogeneity": _meta_dict(self.meta_dl, self.meta_reml),
             "cate": [row.to_dict() for row in self.cate],
             "rules": [row.to_dict() for row in self.rules],
+            "site_verdicts": self.site_verdicts,
+            "within_site_balance": None if self.within_site_balance is None else self.within_site_balance["rows"],
+            "within_site_checks": None if self.within_site_balance is None else {
+                k: v for k, v in self.within_site_balance.items() if k != "rows"},
+            "reference_agreement": self.reference_agreement,
             "transport": None if self.transport is None else self.transport.to_dict(),
             "warnings": list(self.warnings),
         }
@@ -397,6 +418,8 @@ def _meta_dict(dl: RandomEffectsResult | None, reml: RandomEffectsResult | None)
         "note": "random-effects mean, I² and prediction interval from REML; inputs are the per-site differences "
         "in means and their Neyman variances" + (f"; {reml.note}" if reml.note else ""),
         "dl": dl.to_dict(), "reml": reml.to_dict(),
+        "dropped": [{"site": site, "reason": reason} for site, reason in reml.dropped],
+        "ci_method": reml.ci_method,
     }
 
 

@@ -32,30 +32,23 @@ from scipy import stats
 
 from ..blind.analysis import BlindConfig
 from ..blind.claims import Claims, rule_column, score_column, tau_column
+from ..blind.plan import cate_claim, check_plan, rule_claim
 from .correspondence import (
     Comparison,
     compare,
     compare_scores,
-    default_margin,
     paired_difference,
-    percent_bias_reduction,
+    percent_bias_reduction_ci,
 )
 from ..intake.sitetrials import DesignATE, design_ate, naive_ate, site_table
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
-from ..core.interpret import (
-    ALPHA,
-    DIFFERENT,
-    HETEROGENEITY_ALPHA,
-    NOT_RECOVERED,
-    RECOVERED,
-    RECOVERY_CLASSES,
-    claim_recovery,
-    estimator_label,
-    headline_ate_verdict,
-    heterogeneity_status,
-    propensity_recovered,
-)
+from ..core.interpret import HETEROGENEITY_ALPHA, heterogeneity_status
+from .lockedplan import UsedPlan, use_plan
+from .balance import within_site_balance
+from .designscores import ipw_paired_scores, overlap_paired_scores
+from .siteverdicts import reference_agreement, site_verdicts
+from .verdicts import headline, site_notes, table_rows
 from ..blind.evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
 from .heterogeneity import RandomEffectsResult, random_effects
 from .recovery import recover_propensity
@@ -66,7 +59,11 @@ from .scorecard import AteComparison, CateComparison, RuleComparison, Scorecard
 from .transport import leave_one_site_out
 
 PRIMARY_ESTIMATOR = "aipw"
+META_CI = "hksj"  # Hartung–Knapp–Sidik–Jonkman CI of the random-effects mean (t, k − 1 df)
 CROSS_ESTIMAND = "overlap"
+# weighting estimators are paired through their scores with ê estimated (``designscores``): the stored
+# ê-known scores miss the propensity-estimation term and mis-state SE(D)
+PAIRED_SCORES = {"ipw": ipw_paired_scores, CROSS_ESTIMAND: overlap_paired_scores}
 Tick = Callable[[str], None]
 
 MISMATCH_WHAT = "claims were made on another dataset"
@@ -190,35 +187,35 @@ def overlap_design_scores(e_hat: np.ndarray, design_scores: np.ndarray) -> np.nd
 # --------------------------------------------------------------------------------------------------------
 # average effects
 # --------------------------------------------------------------------------------------------------------
-def _ate_comparisons(claims: dict[str, Any], u: _Units, truth: DesignATE, margin: float) -> list[AteComparison]:
-    """Every blind ATE estimator against the pooled design-based ATE, paired on the included units."""
+def _ate_comparisons(claims: dict[str, Any], u: _Units, truth: DesignATE, plan: UsedPlan) -> list[AteComparison]:
+    """Every blind ATE estimator against the pooled design-based ATE, paired on the included units.
+
+    The percent bias reduction of each adjusted estimator comes with its delta-method CI from the joint
+    per-unit scores of its paired difference and the naive one (``percent_bias_reduction_ci``)."""
     design_psi = truth.estimate.scores
-    rows = []
-    naive_bias = None
+    delta, alpha = plan.delta, plan.alpha
+    naive_d = u.blind_scores("naive") - design_psi if score_column("naive") in u.sidecar else None
+    out = []
     for claim in claims.get("ate", []):
         name = claim["estimator"]
         if score_column(name) not in u.sidecar:
             continue
         scores = u.blind_scores(name)
-        comp = compare_scores(scores, design_psi, margin, ALPHA)
-        if name == "naive":
-            naive_bias = comp.difference.estimate
-        rows.append((name, claim, scores, comp))
-    out = []
-    for name, claim, scores, comp in rows:
-        pbr = float("nan") if naive_bias is None or name == "naive" else percent_bias_reduction(
-            naive_bias, comp.difference.estimate
-        )
+        if name in PAIRED_SCORES:
+            scores = PAIRED_SCORES[name](u.y, u.w, u.e_hat, u.mu0, u.mu1)
+        comp = compare_scores(scores, design_psi, delta, alpha)
+        pbr = None if naive_d is None or name == "naive" else percent_bias_reduction_ci(scores - design_psi, naive_d)
         same, note, estimand = None, "", claim.get("estimand", "ATE")
         if name == CROSS_ESTIMAND:
-            same = compare_scores(scores, overlap_design_scores(u.e_hat, u.oracle_scores()), margin, ALPHA)
+            same = compare_scores(scores, overlap_design_scores(u.e_hat, u.oracle_scores()), delta, alpha)
             note = (
                 "targets the overlap-weighted effect (ATO), a different estimand: its verdict against the pooled "
                 "ATE mixes estimand and bias; 'same_estimand' compares it with the design-based ATO"
             )
         out.append(AteComparison(
             estimator=name, estimand=estimand, claimed=_claim_summary(claim),
-            blind=Estimate.from_scores(name, scores, estimand=estimand), design=truth.estimate, comparison=comp,
+            blind=Estimate.from_scores(name, u.blind_scores(name), estimand=estimand), design=truth.estimate,
+            comparison=comp,
             percent_bias_reduction=pbr, note=note, same_estimand=same,
         ))
     return out
@@ -228,19 +225,20 @@ def _ate_comparisons(claims: dict[str, Any], u: _Units, truth: DesignATE, margin
 # heterogeneity claims
 # --------------------------------------------------------------------------------------------------------
 def _gates_comparisons(
-    tau: np.ndarray, blind: np.ndarray, design: np.ndarray, k: int, margin: float
+    tau: np.ndarray, blind: np.ndarray, design: np.ndarray, k: int, model: str, plan: UsedPlan
 ) -> tuple[Comparison, list[Comparison], Comparison]:
     """High/low split, GATES groups and top − bottom; D from GATES of Γ_blind − Γ_design (linear in Γ)."""
     gb, gd, gdiff = gates(tau, blind, k), gates(tau, design, k), gates(tau, blind - design, k)
 
-    def pair(b: Estimate, d: Estimate, diff: Estimate) -> Comparison:
-        return compare(b.estimate, d.estimate, diff.se, margin, ALPHA)
+    def pair(b: Estimate, d: Estimate, diff: Estimate, part: str) -> Comparison:
+        return compare(b.estimate, d.estimate, diff.se, plan.margin(cate_claim(model, part)), plan.alpha)
 
-    groups = [pair(b.estimate, d.estimate, x.estimate) for b, d, x in zip(gb.groups, gd.groups, gdiff.groups)]
+    groups = [pair(b.estimate, d.estimate, x.estimate, f"gate{g + 1}")
+              for g, (b, d, x) in enumerate(zip(gb.groups, gd.groups, gdiff.groups))]
     return (
-        pair(gb.high_low, gd.high_low, gdiff.high_low),
+        pair(gb.high_low, gd.high_low, gdiff.high_low, "high_low"),
         groups,
-        pair(gb.high_minus_low, gd.high_minus_low, gdiff.high_minus_low),
+        pair(gb.high_minus_low, gd.high_minus_low, gdiff.high_minus_low, "top_bottom"),
     )
 
 
@@ -264,9 +262,10 @@ def blp_beta2_scores(y: np.ndarray, w: np.ndarray, e: np.ndarray, tau: np.ndarra
     return fit.beta2.estimate + phi[:, j]
 
 
-def _blp_comparison(u: _Units, tau: np.ndarray, margin: float) -> tuple[BlpResult, BlpResult, Comparison | None]:
-    """BLP with ê (blind) and with e_S (design), baseline μ̂₀ as in the blind run; β₂ compared with the margin
-    δ/sd(τ̂) (β₂·sd(τ̂) is the SD of the best linear predictor of the effect, in outcome units)."""
+def _blp_comparison(u: _Units, tau: np.ndarray, margin: float, alpha: float
+                    ) -> tuple[BlpResult, BlpResult, Comparison | None]:
+    """BLP with ê (blind) and with e_S (design), baseline μ̂₀ as in the blind run; β₂ (a calibration slope,
+    ideal 1) compared on its own scale with the plan's β₂ margin."""
     fit_b = blp(u.y, u.w, u.e_hat, tau, u.mu0)
     fit_d = blp(u.y, u.w, u.rate, tau, u.mu0)
     sd = float(np.std(tau, ddof=1))
@@ -274,16 +273,16 @@ def _blp_comparison(u: _Units, tau: np.ndarray, margin: float) -> tuple[BlpResul
         return fit_b, fit_d, None
     sb = blp_beta2_scores(u.y, u.w, u.e_hat, tau, u.mu0, fit_b)
     sd_scores = blp_beta2_scores(u.y, u.w, u.rate, tau, u.mu0, fit_d)
-    return fit_b, fit_d, compare_scores(sb, sd_scores, margin / sd, ALPHA)
+    return fit_b, fit_d, compare_scores(sb, sd_scores, margin, alpha)
 
 
 def _rank_comparison(tau: np.ndarray, blind: np.ndarray, design: np.ndarray, kind: str, n_boot: int, seed: int,
-                     margin: float) -> tuple[Comparison, float, dict[str, Any]]:
+                     margin: float, alpha: float) -> tuple[Comparison, float, dict[str, Any]]:
     """AUTOC / Qini of the τ̂ ranking with blind and design scores on the same half-samples (column 0 blind,
     column 1 design); D's SE is the SD of the paired replicate differences.  Returns the comparison, the
     design value's own SE and the design TOC curve (q grid, TOC(q), pointwise SE) for the report."""
     res = rank_metric(tau, np.column_stack([blind, design]), kind=kind, n_boot=n_boot, seed=seed)
-    comp = compare(float(res.estimate[0]), float(res.estimate[1]), res.difference(0, 1).se, margin, ALPHA)
+    comp = compare(float(res.estimate[0]), float(res.estimate[1]), res.difference(0, 1).se, margin, alpha)
     curve = {"q": res.q.tolist(), "design": {"toc": res.toc[:, 1].tolist(), "se": res.toc_se[:, 1].tolist()}}
     return comp, float(res.se[1]), curve
 
@@ -307,16 +306,18 @@ def _heterogeneity_status(
 
 
 def _cate_comparison(
-    key: str, claim: dict[str, Any], u: _Units, tau_const: np.ndarray, settings: dict[str, Any], margin: float
+    key: str, claim: dict[str, Any], u: _Units, tau_const: np.ndarray, settings: dict[str, Any], plan: UsedPlan
 ) -> CateComparison:
     tau = u.sidecar[tau_column(key)].to_numpy(dtype=float)
     blind, design = u.blind_scores(), u.oracle_scores()
     k = int(settings.get("gates_groups", 5))
     n_boot, seed = int(settings.get("n_boot", 200)), int(settings.get("seed", 0))
-    high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, k, margin)
-    fit_b, fit_d, beta2 = _blp_comparison(u, tau, margin)
-    autoc, autoc_design_se, toc_curve = _rank_comparison(tau, blind, design, "autoc", n_boot, seed, margin)
-    qini, _, _ = _rank_comparison(tau, blind, design, "qini", n_boot, seed, margin)
+    high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, k, key, plan)
+    fit_b, fit_d, beta2 = _blp_comparison(u, tau, plan.margin(cate_claim(key, "beta2")), plan.alpha)
+    autoc, autoc_design_se, toc_curve = _rank_comparison(tau, blind, design, "autoc", n_boot, seed,
+                                                         plan.margin(cate_claim(key, "autoc")), plan.alpha)
+    qini, _, _ = _rank_comparison(tau, blind, design, "qini", n_boot, seed, plan.margin(cate_claim(key, "qini")),
+                                  plan.alpha)
     costs = None
     if u.cost is not None:
         design_costs = cost_curve(tau, design, u.cost)
@@ -367,13 +368,14 @@ def _rule_by_site(pi: np.ndarray, u: _Units, blind_gain: float) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def _rule_comparison(claim: dict[str, Any], u: _Units, margin: float) -> RuleComparison:
+def _rule_comparison(claim: dict[str, Any], u: _Units, plan: UsedPlan) -> RuleComparison:
+    """Value (margin δ) and gain (the rule's own capped margin) of one rule, blind against oracle AIPW."""
     pi = u.sidecar[rule_column(claim["rule"])].to_numpy(dtype=float)
     blind = rule_value(pi, *u.blind_arms(), u.cost)
     oracle = rule_value(pi, *u.oracle_arms(), u.cost)
     ipw = rule_value(pi, *u.ipw_arms(), u.cost)
-    value = compare_scores(blind.value.scores, oracle.value.scores, margin, ALPHA)
-    gain = compare_scores(blind.gain.scores, oracle.gain.scores, margin, ALPHA)
+    value = compare_scores(blind.value.scores, oracle.value.scores, plan.delta, plan.alpha)
+    gain = compare_scores(blind.gain.scores, oracle.gain.scores, plan.margin(rule_claim(claim["rule"])), plan.alpha)
     return RuleComparison(
         rule=claim["rule"], model=claim.get("model"), kind=claim.get("kind", ""), budget=claim.get("budget"),
         treated_share=blind.treated_share, claimed=_claim_summary(claim), value=value, gain=gain,
@@ -397,12 +399,18 @@ def _sites(study: Study, u: _Units, design: np.ndarray) -> pd.DataFrame:
 
 
 def _meta_analysis(sites: pd.DataFrame) -> tuple[RandomEffectsResult | None, RandomEffectsResult | None, str]:
-    """DL and REML random-effects fits of the per-site differences in means (included sites with SE > 0)."""
-    usable = sites[sites["included"] & np.isfinite(sites["se"]) & (sites["se"] > 0)]
+    """DL and REML random-effects fits of the per-site differences in means of the included sites; sites with
+    no usable SE are dropped by ``random_effects`` and listed in its ``dropped``."""
+    usable = sites[sites["included"]]
     if len(usable) < 2:
         return None, None, f"between-site meta-analysis skipped: {len(usable)} site(s) with a usable estimate"
     est, var = usable["difference_in_means"].to_numpy(), usable["se"].to_numpy() ** 2
-    return random_effects(est, var, "dl"), random_effects(est, var, "reml"), ""
+    labels = usable["site"].astype(str).tolist()
+    try:
+        return (random_effects(est, var, "dl", ci=META_CI, sites=labels),
+                random_effects(est, var, "reml", ci=META_CI, sites=labels), "")
+    except SiteproofError as err:  # fewer than 2 sites with a usable SE
+        return None, None, f"between-site meta-analysis skipped: {err.what}"
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -414,6 +422,9 @@ def run_unmask(
     units: pd.DataFrame | None = None,
     *,
     margin: float | None = None,
+    alpha: float | None = None,
+    multiplicity: str | None = None,
+    deviate_from_plan: bool = False,
     seed: int = 0,
     transport: bool = False,
     workers: int = 1,
@@ -426,19 +437,21 @@ def run_unmask(
     ``claims`` is the :class:`~siteproof.blind.claims.Claims` object of the blind run (its per-unit table is
     used), or a ``claims.json`` record together with its per-unit table ``units``.
 
-    ``margin`` is the equivalence margin δ in outcome units (default 0.1 × SD of the outcome, a common
-    practice).  ``seed`` drives the site classifier's folds; bootstrap draws reuse the blind run's seed so
-    that the blind columns reproduce the claims.  ``transport`` adds leave-one-site-out transport with
-    ``workers`` local processes, rerunning the blind analysis with ``blind_config`` (default: the claims'
-    settings with the default learners).  ``site_learner`` is the classifier of the site for propensity
-    recovery (default: ``recovery.default_site_learner``, a random forest).
+    Margins, alpha and the multiplicity method come from the claims' locked analysis plan (``blind.plan``).
+    ``margin`` (the ATE-family δ in outcome units), ``alpha`` and ``multiplicity`` ("holm", "bh") may only
+    differ from the plan with ``deviate_from_plan=True``; the deviation is then recorded in ``plan.deviations``.
+    ``seed`` drives the site classifier's folds; bootstrap draws reuse the blind run's seed so that the blind
+    columns reproduce the claims.  ``transport`` adds leave-one-site-out transport with ``workers`` local
+    processes, rerunning the blind analysis with ``blind_config`` (default: the claims' settings with the
+    default learners).  ``site_learner`` is the classifier of the site for propensity recovery (default:
+    ``recovery.default_site_learner``, a random forest).
     """
     tick = progress or (lambda label="": None)
     claims, units = _claims_and_units(claims, units)
     check_claims_match(study, claims, units)
+    plan = use_plan(check_plan(claims, "the claims"), margin=margin, alpha=alpha, multiplicity=multiplicity,
+                    deviate_from_plan=deviate_from_plan)
     data = study.blind
-    margin_source = "user" if margin is not None else "default: 0.1 × SD of the outcome (common practice)"
-    margin = float(margin) if margin is not None else default_margin(data.y)
     settings = claims.get("settings", {})
 
     truth = design_ate(data.y, data.w, study.site, study.stratum)
@@ -448,7 +461,7 @@ def run_unmask(
     sites = _sites(study, u, design_scores)
     tick("design")
 
-    ate = _ate_comparisons(claims, u, truth, margin)
+    ate = _ate_comparisons(claims, u, truth, plan)
     tick("average effects")
     propensity = recover_propensity(
         u.e_hat, u.rate, u.site, u.w, X=data.X[truth.included], rates_source=study.rates_source,
@@ -458,13 +471,21 @@ def run_unmask(
     meta_dl, meta_reml, meta_note = _meta_analysis(sites)
     tau_const = u.sidecar["tau_constant"].to_numpy(dtype=float) if "tau_constant" in u.sidecar else np.zeros(u.n)
     cate = [
-        _cate_comparison(c["model"], c, u, tau_const, settings, margin)
+        _cate_comparison(c["model"], c, u, tau_const, settings, plan)
         for c in claims.get("cate", [])
         if c["model"] != "constant" and tau_column(c["model"]) in u.sidecar
     ]
     tick("heterogeneity")
-    rules = [_rule_comparison(c, u, margin) for c in claims.get("rules", []) if rule_column(c["rule"]) in u.sidecar]
+    rules = [_rule_comparison(c, u, plan) for c in claims.get("rules", []) if rule_column(c["rule"]) in u.sidecar]
     tick("rules")
+    tau_by_model = {c["model"]: u.sidecar[tau_column(c["model"])].to_numpy(dtype=float)
+                    for c in claims.get("cate", []) if tau_column(c["model"]) in u.sidecar}
+    per_site = site_verdicts(tau_by_model, design_scores, u.site, u.w, plan.delta, plan.alpha,
+                             plan.multiplicity) if tau_by_model else None
+    balance = within_site_balance(data.X, data.feature_names, data.w, study.site, plan.alpha, plan.multiplicity,
+                                  stratum=study.stratum)
+    references = reference_agreement(truth.estimate.scores, design_scores, plan.alpha, site=u.site)
+    tick("sites")
 
     moved = None
     if transport:
@@ -488,69 +509,37 @@ def run_unmask(
             f"known rates: {study.rates_source} — no rate was declared for some sites, so the realized treated "
             "share stands in for the known rate there"
         )
+    notes = site_notes(balance.flagged, references.flagged, references.to_dict())
+    warnings += notes
+    if plan.deviations:
+        warnings.append("scored with a deviation from the locked analysis plan: " + ", ".join(
+            f"{d['field']} {d['planned']} → {d['used']}" for d in plan.deviations))
     card = Scorecard(
         study={
             "name": getattr(study.spec, "name", None), "n": int(data.y.size), "n_sites": int(study.n_sites),
             "n_included": truth.n_included, "excluded_sites": list(truth.excluded_sites),
-            "margin": margin, "margin_source": margin_source, "alpha": ALPHA,
+            "margin": plan.delta, "margin_source": _margin_source(plan), "alpha": plan.alpha,
             "outcome": data.outcome, "outcome_sd": float(data.outcome_sd()), "rates_source": study.rates_source,
             "fingerprint": data.fingerprint, "seed": seed,
         },
         rates_source=study.rates_source, sites=sites, design=truth, oracle=oracle,
         naive=naive_ate(data.y, data.w), ate=ate, propensity=propensity, meta_dl=meta_dl, meta_reml=meta_reml,
-        cate=cate, rules=rules, headline="", warnings=warnings, transport=moved,
+        cate=cate, rules=rules, headline="", warnings=warnings, transport=moved, plan=plan.to_dict(),
+        verdicts=table_rows(ate, cate, rules, [] if per_site is None else per_site.records(), plan),
+        site_verdicts=None if per_site is None else {k: v for k, v in per_site.to_dict().items() if k != "rows"},
+        within_site_balance=balance.to_dict(), reference_agreement=references.to_dict(), headline_notes=notes,
     )
     card.headline = headline(card)
     return card
 
 
-# --------------------------------------------------------------------------------------------------------
-# verdict summaries
-# --------------------------------------------------------------------------------------------------------
-def claim_verdicts(scorecard: Scorecard) -> list[tuple[str, str]]:
-    """(claim label, verdict) for every headline claim: each ATE estimator (the overlap estimator by its
-    same-estimand comparison), each CATE model (AUTOC) and each rule (gain)."""
-    out = []
-    for row in scorecard.ate:
-        same = row.same_estimand.verdict if row.same_estimand is not None else None
-        out.append((f"ATE {row.estimator}", headline_ate_verdict(row.comparison.verdict, same)))
-    out += [(f"CATE {row.model}", row.verdict) for row in scorecard.cate]
-    out += [(f"rule {row.rule}", row.verdict) for row in scorecard.rules]
-    return out
-
-
-def any_different(scorecard: Scorecard) -> bool:
-    """True when any headline claim (:func:`claim_verdicts`) is ``different`` — for ``--fail-on different``."""
-    return any(v == DIFFERENT for _, v in claim_verdicts(scorecard))
-
-
-def headline(scorecard: Scorecard) -> str:
-    """One sentence: what the blind analysis recovered, what it did not, and what stays indeterminate.
-
-    Classes and rules: :func:`~siteproof.core.interpret.claim_recovery` for each claim's verdict and
-    :func:`~siteproof.core.interpret.propensity_recovered` for the calibration slope of ê.
-    """
-    parts: dict[str, list[str]] = {key: [] for key in RECOVERY_CLASSES}
-    primary = next((r for r in scorecard.ate if r.estimator == PRIMARY_ESTIMATOR), None)
-    if primary is not None:
-        c = primary.comparison
-        parts[claim_recovery(c.verdict)].append(
-            f"the average effect (blind {estimator_label(PRIMARY_ESTIMATOR)} {c.blind:.3g} vs design {c.design:.3g})"
-        )
-    slope = scorecard.propensity.calibration_slope
-    if np.isfinite(slope.estimate):
-        ok = propensity_recovered(slope.estimate, slope.ci)
-        parts[RECOVERED if ok else NOT_RECOVERED].append(f"the propensity calibration (slope {slope.estimate:.2f})")
-    for label, rows in (("effect rankings", scorecard.cate), ("rule gains", scorecard.rules)):
-        by_class: dict[str, int] = {}
-        for row in rows:
-            key = claim_recovery(row.verdict)
-            by_class[key] = by_class.get(key, 0) + 1
-        for key, count in by_class.items():
-            parts[key].append(f"{count} of {len(rows)} {label}")
-    said = [f"{key}: {', '.join(items)}" for key, items in parts.items() if items]
-    return ("Unmasked against the sites' randomization — " + "; ".join(said) + ".") if said else \
-        "Unmasked against the sites' randomization — no claim could be scored."
+def _margin_source(plan: UsedPlan) -> str:
+    """How the ATE-family δ was set, for the report's margin note."""
+    if any(d["field"] == "margin" for d in plan.deviations):
+        return "set at unmask, deviating from the locked plan"
+    if plan.margin_source == "user":
+        return f"user-set at the blind stage, locked in the plan (sha256 {plan.sha256[:12]}…)"
+    return f"default {plan.margin_rules.get('ate', '')}, locked in the plan (sha256 {plan.sha256[:12]}…)"
 
 
 # --------------------------------------------------------------------------------------------------------
