@@ -17,15 +17,14 @@ from siteproof.core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE
 from siteproof.covsets import (
     SETS_FILE,
     compare_covariate_sets,
-    holm_verdicts,
-    percent_bias_reduction_ci,
+    adjusted_verdicts,
     resolve_sets,
     write_sets,
 )
 from siteproof.intake.sitetrials import design_ate
 from siteproof.intake.study import StudySpec, load_study
 from siteproof.simulation.simulate import simulate
-from siteproof.unmask.correspondence import compare
+from siteproof.unmask.correspondence import compare, percent_bias_reduction_ci
 from siteproof.unmask.sensitivity import covariate_groups
 
 COVARIATES = ["spring_wcpm", "grade", "home_language", "age"]
@@ -69,15 +68,15 @@ def test_pbr_delta_method_matches_the_bootstrap():
     assert est.se == pytest.approx(boot.std(ddof=1), rel=0.1)
 
 
-def test_holm_verdicts_follow_the_step_down_rule():
+def test_adjusted_verdicts_follow_the_step_down_rule():
     # Holm (1979): sorted p_(i) × (m − i + 1), made monotone; here difference p = (0.01, 0.04, 0.03) →
     # adjusted (0.03, 0.06, 0.06); TOST p = (0.5, 0.001, 0.02) → adjusted (0.5, 0.003, 0.04)
     rows = [compare(1.0, 0.0, 1.0, 5.0) for _ in range(3)]
     rows = [r.__class__(**{**r.__dict__, "p_value": p, "p_equivalence": q})
             for r, p, q in zip(rows, (0.01, 0.04, 0.03), (0.5, 0.001, 0.02))]
-    assert holm_verdicts(rows) == [DIFFERENT, EQUIVALENT, EQUIVALENT]
+    assert adjusted_verdicts(rows) == [DIFFERENT, EQUIVALENT, EQUIVALENT]
     rows[0] = rows[0].__class__(**{**rows[0].__dict__, "p_value": 0.2})
-    assert holm_verdicts(rows)[0] == INDETERMINATE
+    assert adjusted_verdicts(rows)[0] == INDETERMINATE
 
 
 def test_sets_share_folds_and_one_design_truth(study, tmp_path):

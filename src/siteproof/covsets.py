@@ -33,7 +33,6 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
-from statsmodels.stats.multitest import multipletests
 
 from threadpoolctl import threadpool_limits
 
@@ -41,13 +40,16 @@ from .blind.analysis import SMALL_DATA, BlindConfig
 from .blind.average import aipw, naive
 from .blind.nuisance import Nuisances, cross_fit_nuisances, make_folds
 from .core.errors import SiteproofError
-from .core.estimates import Estimate, normal_ci
-from .core.interpret import ALPHA, DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT
+from .core.estimates import Estimate
+from .core.interpret import ALPHA, ATE_MARGIN_SD_SHARE, DEFAULT_MULTIPLICITY
 from .core.outputs import StagedOutput, atomic_write_json, check_out_dir
 from .core.results import ResultsMixin
 from .intake.sitetrials import design_ate
 from .intake.study import Study, StudySpec, load_study
-from .unmask.correspondence import Comparison, compare_scores, default_margin, paired_difference
+from .blind.plan import residual_sd
+from .unmask.correspondence import (Comparison, compare_scores, paired_difference, percent_bias_reduction_ci,
+                                     verdict_from_p)
+from .unmask.multiplicity import adjust
 from .unmask.sensitivity import SensitivityResult, covariate_groups, sensitivity_analysis
 
 SETS_FILE = "sets.json"
@@ -58,35 +60,25 @@ VERSION = 1
 
 
 # --------------------------------------------------------------------------------------------------------
-# percent bias reduction with a delta-method CI
+# margin and adjusted verdicts
 # --------------------------------------------------------------------------------------------------------
-def percent_bias_reduction_ci(d_adjusted: np.ndarray, d_naive: np.ndarray, level: float = 0.95) -> Estimate:
-    """PBR = 100·(1 − |mean d_adj|/|mean d_naive|) with the delta-method SE of the module docstring."""
-    d_a, d_n = np.asarray(d_adjusted, dtype=float), np.asarray(d_naive, dtype=float)
-    b_a, b_n = float(d_a.mean()), float(d_n.mean())
-    if b_n == 0.0:
-        return Estimate("percent bias reduction", float("nan"), float("nan"), (float("nan"),) * 2, "PBR (%)")
-    pbr = 100.0 * (1.0 - abs(b_a) / abs(b_n))
-    phi = -100.0 * (np.sign(b_a) * (d_a - b_a) / abs(b_n) - abs(b_a) * np.sign(b_n) * (d_n - b_n) / b_n**2)
-    se = float(phi.std(ddof=1) / np.sqrt(phi.size)) if b_a != 0.0 else float("nan")
-    return Estimate("percent bias reduction", pbr, se, normal_ci(pbr, se, level), "PBR (%)")
+def sets_margin(data, named: Mapping[str, Sequence[str]], runs: Mapping[str, tuple[np.ndarray, Nuisances]]) -> float:
+    """The ATE-family margin of the locked plan (``blind.plan``), δ = 0.1 × pooled within-arm residual SD of the
+    outcome, from the cross-fitted arm means of the widest set (one δ for every set, fixed blind)."""
+    widest = max(named, key=lambda name: len(named[name]))
+    nuis = runs[widest][1]
+    return ATE_MARGIN_SD_SHARE * residual_sd(data.y, data.w, nuis.mu0, nuis.mu1)
 
 
-# --------------------------------------------------------------------------------------------------------
-# Holm-adjusted verdicts
-# --------------------------------------------------------------------------------------------------------
-def holm_verdicts(comparisons: Sequence[Comparison], alpha: float = ALPHA) -> list[str]:
-    """Four-class verdicts (Tryon & Lewis 2008) after Holm's adjustment across the comparisons, applied
-    separately to the difference p-values and to the TOST p-values (Holm 1979)."""
+def adjusted_verdicts(comparisons: Sequence[Comparison], alpha: float = ALPHA,
+                      method: str = DEFAULT_MULTIPLICITY) -> list[str]:
+    """Four-class verdicts (Tryon & Lewis 2008) after adjusting across the sets (Holm 1979 by default, or
+    Benjamini–Hochberg), separately for the difference p-values and for the TOST p-values."""
     if not comparisons:
         return []
-    p_diff = multipletests([c.p_value for c in comparisons], alpha=alpha, method="holm")[1]
-    p_equiv = multipletests([c.p_equivalence for c in comparisons], alpha=alpha, method="holm")[1]
-    words = []
-    for diff, equiv in zip(p_diff < alpha, p_equiv < alpha):
-        words.append(TRIVIALLY_DIFFERENT if diff and equiv else EQUIVALENT if equiv else DIFFERENT if diff
-                     else INDETERMINATE)
-    return words
+    p_diff = adjust([c.p_value for c in comparisons], method)
+    p_equiv = adjust([c.p_equivalence for c in comparisons], method)
+    return [verdict_from_p(d, e, alpha) for d, e in zip(p_diff, p_equiv)]
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -241,7 +233,7 @@ def compare_covariate_sets(
     """Blind AIPW under each covariate set on the same folds and seed, scored against one unmasking.
 
     ``sets`` maps a name to covariate columns (names as in the data); ``drop_each`` adds the full set and every
-    leave-one-covariate-out set.  ``margin`` is the equivalence margin (default 0.1 × SD of the outcome).
+    leave-one-covariate-out set.  ``margin`` is the equivalence margin (default: the locked plan's ATE-family rule, :func:`sets_margin`).
     ``sensitivity`` adds, per set, the omitted-variable-bias analysis (``unmask.sensitivity``) with benchmarks
     k× each of the set's covariates: would it have warned of the bias the unmasking found?
     """
@@ -254,15 +246,16 @@ def compare_covariate_sets(
     truth = design_ate(data.y, data.w, study.site, study.stratum)
     inc = truth.included
     psi = truth.estimate.scores
-    margin = float(margin) if margin is not None else (study.spec.margin or default_margin(data.y))
     naive_scores = naive(data.y, data.w).scores[inc]
     threads = config.threads if config.threads is not None else (1 if data.n < SMALL_DATA else None)
     with threadpool_limits(limits=threads, user_api="openmp"):  # as run_blind: one thread on small data
         runs = {name: _set_fit(study, cols, folds, config) for name, cols in named.items()}
+        if margin is None:
+            margin = study.spec.margin if study.spec.margin is not None else sets_margin(data, named, runs)
         comps = {name: compare_scores(scores[inc], psi, margin, alpha) for name, (scores, _) in runs.items()}
         sens = {name: _set_sensitivity(study, named[name], runs[name][1], inc, comps[name], config, k)
                 for name in named} if sensitivity else {}
-    adjusted = holm_verdicts(list(comps.values()), alpha)
+    adjusted = adjusted_verdicts(list(comps.values()), alpha)
     results = [
         SetResult(name, named[name], Estimate.from_scores(name, runs[name][0]), comps[name], adj,
                   percent_bias_reduction_ci(runs[name][0][inc] - psi, naive_scores - psi), dict(runs[name][1].picks),

@@ -107,7 +107,6 @@ def _draw_covariates(scenario: Scenario, site_idx: np.ndarray, rng: np.random.Ge
     A cluster-level covariate is drawn once per cluster (one uniform per cluster, the cluster's site rule,
     expressions over the parameters and earlier cluster-level covariates) and copied to the cluster's units.
     """
-    n = site_idx.size
     cluster_level = set(scenario.clusters.covariates) if scenario.clusters is not None else set()
     cluster_env: dict[str, Any] = dict(env)
     values: dict[str, np.ndarray] = {}

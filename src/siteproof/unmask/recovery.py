@@ -43,7 +43,7 @@ pseudo-R² for the site classifier.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
