@@ -330,6 +330,23 @@ def test_a_real_sigint_gives_one_line_and_130(files, tmp_path):
     assert not (tmp_path / "o").exists() and no_scratch_left(tmp_path)
 
 
+def test_an_interrupt_that_a_c_extension_turns_into_another_error_is_still_an_interrupt(files, tmp_path, capsys,
+                                                                                       monkeypatch):
+    # Ctrl-C while a C extension initialises (seen: matplotlib's ft2font during a slow import) surfaces as
+    # "ImportError: initialization failed", not KeyboardInterrupt; it must still exit 130 with the one line.
+    def interrupted_import(*args, **kwargs):
+        try:
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(1)
+        except KeyboardInterrupt:
+            raise ImportError("initialization failed") from None
+
+    monkeypatch.setattr(pipeline, "run_pipeline", interrupted_import)
+    code, lines, _ = run_cli(["run", files["data"], *ROLES, "--out", tmp_path / "o"], capsys)
+    assert code == 130 and lines == ["interrupted — nothing was written"]
+    assert not (tmp_path / "o").exists()
+
+
 # ----------------------------------------------------------------------------------------------------------
 # stderr: one error line first, warnings after it, library noise only with --verbose; exit 3 for bugs
 # ----------------------------------------------------------------------------------------------------------

@@ -61,7 +61,10 @@ def _cells(table, column: int) -> list[str]:
 
 
 def test_the_scoring_uses_the_verdict_names_of_interpret():
-    assert correspondence.VERDICTS is interpret.VERDICTS
+    used = (correspondence.EQUIVALENT, correspondence.DIFFERENT, correspondence.TRIVIALLY_DIFFERENT,
+            correspondence.INDETERMINATE)
+    assert all(a is b for a, b in zip(used, (interpret.EQUIVALENT, interpret.DIFFERENT,
+                                             interpret.TRIVIALLY_DIFFERENT, interpret.INDETERMINATE)))
     assert set(interpret.VERDICT_ORDER) == set(interpret.VERDICTS) == set(interpret.VERDICT_MEANING)
     # Tryon & Lewis (2008): D = 0.5 with SE 0.1 against δ = 1 is significantly non-zero and inside the margin.
     assert correspondence.verdict(0.5, 0.1, 1.0) == TRIVIALLY_DIFFERENT

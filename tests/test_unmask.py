@@ -372,3 +372,25 @@ def test_star_design_estimates_match_an_independent_computation():
     np.testing.assert_allclose(mine["difference_in_means"], theirs["difference_in_means"], rtol=1e-12, equal_nan=True)
     np.testing.assert_allclose(mine["se"], theirs["se"], rtol=1e-12, equal_nan=True)
     assert card.rates_source == "realized" and any("realized" in w for w in card.warnings)
+
+
+def test_a_gates_group_too_small_to_test_is_indeterminate_not_an_error():
+    # Tied τ̂ values share a GATES group, so heavy ties can leave a group with fewer than 2 units: its SE
+    # does not exist (sd of one value), so it cannot be tested — the claim is `indeterminate` with NaN p-values,
+    # which the within-family adjustment skips (Holm 1979 counts only the tests that were run).
+    from siteproof.blind.plan import family_margins
+    from siteproof.core.interpret import INDETERMINATE
+    from siteproof.unmask.lockedplan import UsedPlan
+    from siteproof.unmask.multiplicity import holm
+    from siteproof.unmask.scoring import _gates_comparisons
+
+    rng = np.random.default_rng(0)
+    n = 50
+    tau = np.r_[np.zeros(n - 1), 1.0]  # 49 ties: groups 0..3 are empty or tied, the top group has one unit
+    blind, design = rng.normal(size=n), rng.normal(size=n)
+    plan = UsedPlan(0.05, "holm", family_margins(0.5), {}, {}, ("ate.aipw",), ("ate.naive",), "0" * 64, "user")
+    high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, 5, "t", plan)
+    assert groups[-1].verdict == INDETERMINATE and math.isnan(groups[-1].p_value)
+    assert top_bottom.verdict == INDETERMINATE
+    p = [g.p_value for g in groups]
+    assert np.isnan(holm(p)[-1]) and np.isfinite(holm(p)).sum() == np.isfinite(p).sum()

@@ -9,13 +9,16 @@ published only when the whole command succeeded.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import inspect
+import signal
 import sys
+import threading
 import typing
 from dataclasses import fields
 from pathlib import Path
-from typing import Annotated, Any, Callable, Optional
+from typing import Annotated, Any, Callable, Iterator, Optional
 
 import typer
 
@@ -517,7 +520,7 @@ def main(argv: Optional[list[str]] = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     verbose = VERBOSE_FLAG in args
     args = [arg for arg in args if arg != VERBOSE_FLAG]
-    with quiet_stderr(verbose) as collected:
+    with quiet_stderr(verbose) as collected, _watch_interrupts():
         code, line = _invoke(typer.main.get_command(app), args)
     if line:
         print(line, file=sys.stderr)
@@ -548,8 +551,33 @@ def _invoke(command: click.Command, args: list[str]) -> tuple[int, str]:
     except BrokenPipeError:
         return EXIT_OK, ""
     except Exception as exc:  # anything else is a bug in siteproof: one line, traceback in a log file
+        if _INTERRUPTED.is_set():  # Ctrl-C inside a C extension surfaces as another error (e.g. ImportError)
+            return EXIT_INTERRUPTED, _interrupted_line(args)
         return EXIT_INTERNAL, internal_error_line(exc, args)
     return int(result or EXIT_OK), ""
+
+
+_INTERRUPTED = threading.Event()
+
+
+@contextlib.contextmanager
+def _watch_interrupts() -> Iterator[None]:
+    """Remember that SIGINT arrived (then raise KeyboardInterrupt as usual), so an interrupt that a C extension
+    turns into another exception is still reported as an interrupt; a no-op outside the main thread."""
+    _INTERRUPTED.clear()
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum: int, frame: Any) -> None:  # noqa: ARG001
+        _INTERRUPTED.set()
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGINT, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 def _interrupted_line(args: list[str]) -> str:

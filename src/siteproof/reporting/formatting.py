@@ -117,6 +117,17 @@ def fmt_percent_change(percent: Any, decimals: int = 0) -> str:
     return f"{_fixed(as_float(percent), decimals)} %" if finite(percent) else MISSING
 
 
+def fmt_pbr(pbr: dict | None, not_meaningful: str = "not meaningful") -> str:
+    """A percent bias reduction record {estimate, ci, meaningful} as "85 % [40, 130]"; ``not_meaningful`` when
+    the naive bias is not distinguishable from 0 (then the ratio has no stable meaning); "—" when absent."""
+    pbr = pbr or {}
+    if not finite(pbr.get("estimate")):
+        return MISSING
+    if not pbr.get("meaningful"):
+        return not_meaningful
+    return f"{fmt_percent_change(pbr.get('estimate'))} {fmt_ci(pbr.get('ci'), 0)}"
+
+
 def fmt_sig(value: Any, digits: int = 3) -> str:
     """A number with ``digits`` significant digits, trailing zeros kept (14 → "14.0", -1.7 → "-1.70") and
     fixed notation for ordinary magnitudes (1283 → "1280"); missing → "—"."""

@@ -26,7 +26,7 @@ from ..core.interpret import (
 )
 from ..unmask.correspondence import Comparison
 from ..unmask.scorecard import Scorecard
-from .formatting import fmt, fmt_ci, fmt_pct, fmt_pm, fmt_sig
+from .formatting import fmt, fmt_ci, fmt_pbr, fmt_pct, fmt_pm, fmt_sig
 
 SCREEN_RULES = (".threshold", ".top20", "tree")
 
@@ -136,7 +136,7 @@ def _diff(c: Comparison) -> str:
     """D ± the half-width of its 95 % CI (a Wald interval, so this is the CI written compactly)."""
     d = c.difference
     half = (d.ci[1] - d.ci[0]) / 2.0
-    return f"{_num(d.estimate)} ± {_num(half, 2)}"
+    return fmt_pm(d.estimate, half)
 
 
 def _table(title: str, columns: list[tuple[str, str]]) -> Table:
@@ -186,11 +186,11 @@ def _ate_table(scorecard: Scorecard, unit: str) -> Table:
         claim = rows.get(f"ate.{row.estimator}", {})
         name = row.estimator + (" (ATO)" if row.same_estimand is not None else "")
         if row.same_estimand is None:
-            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _pbr(claim), _v(c.verdict),
+            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), fmt_pbr(claim.get("percent_bias_reduction"), "n.m."), _v(c.verdict),
                       _v(claim.get("verdict_adjusted", "")))
         else:
             same = row.same_estimand
-            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _pbr(claim), _v(c.verdict), "—")
+            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), fmt_pbr(claim.get("percent_bias_reduction"), "n.m."), _v(c.verdict), "—")
             t.add_row("  vs design ATO", _num(same.blind), _num(same.design), _diff(same), "", _v(same.verdict),
                       _v(claim.get("verdict_adjusted", "")))
     return t
@@ -199,17 +199,6 @@ def _ate_table(scorecard: Scorecard, unit: str) -> Table:
 def _rows(scorecard: Scorecard) -> dict[str, dict]:
     """The verdicts table keyed by claim id."""
     return {r["claim"]: r for r in scorecard.verdicts}
-
-
-def _pbr(row: dict) -> str:
-    """Percent bias reduction with its 95 % CI; 'n.m.' (not meaningful) when the naive D is not distinguishable
-    from 0."""
-    pbr = row.get("percent_bias_reduction")
-    if not pbr:
-        return ""
-    if not pbr.get("meaningful"):
-        return "n.m."
-    return f"{fmt(pbr['estimate'], 0)} {fmt_ci(pbr['ci'], 0)}"
 
 
 def _cate_table(scorecard: Scorecard, unit: str) -> Table:

@@ -11,7 +11,8 @@ from . import figures
 from .context import RunView, adjusted_word, interval, margin_note, paired_note, plan_note, verdict_rows
 from .document import FigureBlock, Section, Table, Text, Verdict
 from .figures import Interval
-from .formatting import as_float, finite, fmt, fmt_ci, fmt_p
+from .formatting import as_float, finite, fmt, fmt_ci, fmt_p, fmt_pbr
+from .sections_sensitivity import sensitivity_parts
 
 
 def average_section(run: RunView) -> Section:
@@ -45,6 +46,7 @@ def average_section(run: RunView) -> Section:
         "D = blind − design with its 95 % CI (thin; difference test) and 90 % CI (thick; equivalence test) against "
         "the band ±δ; the verdict is written at the end of each row.")]
     parts.append(_ate_table(run, rows, labels))
+    parts += sensitivity_parts(run)
     return Section("average-effect", "Average effect", _average_reading(run, rows), parts)
 
 
@@ -59,7 +61,7 @@ def _ate_table(run: RunView, rows: list[dict], labels: list[str]) -> Table:
         adjusted = "—" if same else Verdict(adjusted_word(run, claim, r.get("verdict")))
         table_rows.append([label, str(r.get("estimand", "ATE")), run.est_ci(b), run.est_ci(dif),
                            run.ci(r.get("equivalence_ci")), fmt_p(r.get("p_value")), fmt_p(r.get("p_equivalence")),
-                           "—" if same else fmt_p(row.get("p_equivalence_adjusted")), _pbr_text(row),
+                           "—" if same else fmt_p(row.get("p_equivalence_adjusted")), fmt_pbr(row.get("percent_bias_reduction")),
                            Verdict(str(r.get("verdict", ""))), adjusted])
         if same:
             sd = same.get("difference") or {}
@@ -113,22 +115,14 @@ def _average_reading(run: RunView, rows: list[dict]) -> tuple[str, str]:
     if naive is not None and primary is not naive:
         off = run.num((naive.get("difference") or {}).get("estimate"))
         if pbr.get("meaningful") and finite(pbr.get("estimate")):
-            second += (f"; the naive difference in means was off by {off} and {name} removed "
-                       f"{fmt(pbr.get('estimate'), 0)} % of that bias (95 % CI {fmt_ci(pbr.get('ci'), 0)})")
+            change = "removed" if as_float(pbr.get("estimate")) >= 0 else "changed"
+            second += (f"; the naive difference in means was off by {off}, and {name} {change} "
+                       f"{fmt_pbr(pbr)} of that bias (percent bias reduction with its 95 % CI; negative = "
+                       "the adjustment added bias)")
         else:
             second += (f"; the naive difference in means was off by {off}, not distinguishable from 0, so no bias "
                        "reduction is reported")
     return first, second + "."
-
-
-def _pbr_text(row: dict) -> str:
-    """Percent bias reduction with its CI, or why it is not shown."""
-    pbr = row.get("percent_bias_reduction") or {}
-    if not finite(pbr.get("estimate")):
-        return "—"
-    if not pbr.get("meaningful"):
-        return "not meaningful"
-    return f"{fmt(pbr.get('estimate'), 0)} {fmt_ci(pbr.get('ci'), 0)}"
 
 
 # ----------------------------------------------------------------------------------------------------------

@@ -106,6 +106,16 @@ def compare(blind: float, design: float, se_difference: float, margin: float, al
     return _comparison(blind, design, estimate, margin, alpha)
 
 
+def unscorable(blind: float, design: float, margin: float, alpha: float = 0.05) -> Comparison:
+    """A claim that cannot be tested (e.g. a GATES group of fewer than 2 units, whose SE does not exist):
+    D and both p-values are NaN, the verdict ``indeterminate``; multiplicity adjustments skip NaN p-values."""
+    _check_margin_alpha(margin, alpha)
+    nan = float("nan")
+    blind, design = float(blind), float(design)
+    estimate = Estimate("blind − design", blind - design, nan, (nan, nan), "difference")
+    return Comparison(blind, design, estimate, nan, nan, float(margin), nan, (nan, nan), INDETERMINATE, float(alpha))
+
+
 def compare_scores(
     scores_blind: Sequence[float] | np.ndarray,
     scores_design: Sequence[float] | np.ndarray,

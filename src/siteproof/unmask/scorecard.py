@@ -294,6 +294,7 @@ class Scorecard(_ScorecardView):
     within_site_balance: dict[str, Any] | None = None
     reference_agreement: dict[str, Any] | None = None
     headline_notes: list[str] = field(default_factory=list)
+    sensitivity: dict[str, Any] | None = None
 
     @property
     def margin(self) -> float:
@@ -328,6 +329,7 @@ class Scorecard(_ScorecardView):
             "within_site_checks": None if self.within_site_balance is None else {
                 k: v for k, v in self.within_site_balance.items() if k != "rows"},
             "reference_agreement": self.reference_agreement,
+            "sensitivity": self.sensitivity,
             "transport": None if self.transport is None else self.transport.to_dict(),
             "warnings": list(self.warnings),
         }

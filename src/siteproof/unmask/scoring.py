@@ -39,6 +39,7 @@ from .correspondence import (
     compare_scores,
     paired_difference,
     percent_bias_reduction_ci,
+    unscorable,
 )
 from ..intake.sitetrials import DesignATE, design_ate, naive_ate, site_table
 from ..core.errors import SiteproofError
@@ -52,6 +53,7 @@ from .verdicts import headline, site_notes, table_rows
 from ..blind.evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
 from .heterogeneity import RandomEffectsResult, random_effects
 from .recovery import recover_propensity
+from .sensitivity import sensitivity_for_claims
 from ..blind.rules import rule_value, rule_value_by_group
 from ..core.scores import arm_scores
 from ..intake.study import Study
@@ -231,7 +233,10 @@ def _gates_comparisons(
     gb, gd, gdiff = gates(tau, blind, k), gates(tau, design, k), gates(tau, blind - design, k)
 
     def pair(b: Estimate, d: Estimate, diff: Estimate, part: str) -> Comparison:
-        return compare(b.estimate, d.estimate, diff.se, plan.margin(cate_claim(model, part)), plan.alpha)
+        margin = plan.margin(cate_claim(model, part))
+        if not np.isfinite(diff.se):  # a group of < 2 units (heavy ties in τ̂ keep tied units together)
+            return unscorable(b.estimate, d.estimate, margin, plan.alpha)
+        return compare(b.estimate, d.estimate, diff.se, margin, plan.alpha)
 
     groups = [pair(b.estimate, d.estimate, x.estimate, f"gate{g + 1}")
               for g, (b, d, x) in enumerate(zip(gb.groups, gd.groups, gdiff.groups))]
@@ -463,6 +468,8 @@ def run_unmask(
 
     ate = _ate_comparisons(claims, u, truth, plan)
     tick("average effects")
+    sensitivity = _sensitivity(study, units, truth.included, ate, settings, seed)
+    tick("sensitivity")
     propensity = recover_propensity(
         u.e_hat, u.rate, u.site, u.w, X=data.X[truth.included], rates_source=study.rates_source,
         seed=seed, site_learner=site_learner,
@@ -528,9 +535,22 @@ def run_unmask(
         verdicts=table_rows(ate, cate, rules, [] if per_site is None else per_site.records(), plan),
         site_verdicts=None if per_site is None else {k: v for k, v in per_site.to_dict().items() if k != "rows"},
         within_site_balance=balance.to_dict(), reference_agreement=references.to_dict(), headline_notes=notes,
+        sensitivity=sensitivity,
     )
     card.headline = headline(card)
     return card
+
+
+def _sensitivity(study: Study, units: pd.DataFrame, included: np.ndarray, ate: list[AteComparison],
+                 settings: dict[str, Any], seed: int) -> dict[str, Any] | None:
+    """Omitted-variable-bias bounds of the blind AIPW (``unmask.sensitivity``), held against its realized bias
+    D = blind − design; None when the claims carry no AIPW estimate."""
+    primary = next((row for row in ate if row.estimator == PRIMARY_ESTIMATOR), None)
+    if primary is None or "fold" not in units:
+        return None
+    result = sensitivity_for_claims(study, units, included, primary.comparison.difference,
+                                    clip=tuple(settings.get("clip", (0.01, 0.99))), seed=seed)
+    return result.to_dict()
 
 
 def _margin_source(plan: UsedPlan) -> str:
