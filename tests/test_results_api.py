@@ -38,7 +38,7 @@ CLAIMS_KEYS = {"schema", "version", "siteproof_version", "fingerprint", "setting
 SCORECARD_KEYS = {"schema", "version", "siteproof_version", "headline", "rates_source", "study", "sites",
                   "design_ate", "design_oracle_aipw", "naive_ate", "ate", "propensity", "heterogeneity", "cate",
                   "rules", "transport", "warnings", "plan", "verdicts", "site_verdicts", "within_site_balance",
-                  "within_site_checks", "reference_agreement"}
+                  "within_site_checks", "reference_agreement", "sensitivity"}
 
 
 def quick_config() -> BlindConfig:
