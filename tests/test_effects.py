@@ -152,7 +152,7 @@ def test_default_learner_is_seeded_and_deterministic():
     a = _fit("dr", d, seed=7)
     b = _fit("dr", d, seed=7)
     np.testing.assert_array_equal(a.tau, b.tau)
-    assert a.fold_models[0].model.random_state == 7
+    assert a.fold_models[0].model.model.random_state == 7  # the boosting fit inside the bin-code wrapper
 
 
 @pytest.mark.usefixtures("one_openmp_thread")
@@ -228,3 +228,58 @@ def test_progress_is_called_once_per_fold():
     labels: list[str] = []
     _fit("r", d, learner=LinearRegression(), progress=labels.append)
     assert labels == [f"r fold {k}/4" for k in range(1, 5)]
+
+
+# ------------------------------------------------------------------------------------------ shared binning
+def test_fold_bins_match_scikit_learn_binning_of_the_training_units():
+    # Reference: scikit-learn's own bin mapper (the binning HistGradientBoosting applies inside fit); on
+    # ≤ 200 000 rows it uses every row, so the codes must agree exactly.
+    from sklearn.ensemble._hist_gradient_boosting.binning import _BinMapper
+
+    from siteproof.blind.binning import fold_bins
+
+    rng = np.random.default_rng(3)
+    X = np.column_stack([rng.normal(size=2000), rng.integers(0, 4, 2000), rng.exponential(size=2000)])
+    folds = np.arange(2000) % 4
+    shared = fold_bins(X, folds, seed=0)
+    for k in range(4):
+        train = folds != k
+        reference = _BinMapper(n_bins=256).fit(X[train])
+        np.testing.assert_array_equal(shared.codes[k][train], reference.transform(X[train]))
+
+
+def test_fold_bins_never_use_the_covariates_of_the_held_out_fold():
+    from siteproof.blind.binning import fold_bins
+
+    rng = np.random.default_rng(4)
+    X = rng.normal(size=(1000, 2))
+    folds = np.arange(1000) % 5
+    moved = X.copy()
+    moved[folds == 2] *= 50.0  # fold 2's own covariates must not move fold 2's cuts
+    a, b = fold_bins(X, folds, seed=0), fold_bins(moved, folds, seed=0)
+    for cut_a, cut_b in zip(a.bins[2].cuts, b.bins[2].cuts):
+        np.testing.assert_array_equal(cut_a, cut_b)
+
+
+@pytest.mark.usefixtures("one_openmp_thread")
+def test_shared_bins_give_the_same_fit_as_bins_computed_inside():
+    from siteproof.blind.binning import fold_bins
+
+    d = _cross_fit_linear(_dgp(1500, seed=8))
+    bins = fold_bins(d["X"], d["folds"], seed=3)
+    for key in ("s", "x", "r", "dr"):
+        inside, shared = _fit(key, d, seed=3), _fit(key, d, seed=3, bins=bins)
+        np.testing.assert_array_equal(inside.tau, shared.tau)
+        X_new = d["X"][:50] + 0.01
+        np.testing.assert_array_equal(inside.predict(X_new), shared.predict(X_new))
+
+
+@pytest.mark.usefixtures("one_openmp_thread")
+def test_default_fold_models_predict_new_units_through_their_fold_cuts():
+    # transporting τ̂ must map new covariates with the fold's own cuts: predicting the training covariates
+    # reproduces the out-of-fold τ̂ of the fold each unit was held out from
+    d = _cross_fit_linear(_dgp(1200, seed=9))
+    fit = _fit("dr", d, seed=1)
+    for position in range(5):
+        held_out = d["folds"] == position
+        np.testing.assert_allclose(fit.fold_models[position].predict(d["X"][held_out]), fit.tau[held_out], rtol=0, atol=1e-12)

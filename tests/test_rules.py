@@ -377,3 +377,38 @@ def test_brute_force_helper_enumerates_all_depth_one_trees():
     reward = np.array([2.0, -1.0])
     assert _brute_force_best(X, reward, 1, 1) == 2.0
     assert _brute_force_best(X, reward, 1, 2) == 1.0
+
+
+def test_depth_one_tree_with_more_than_256_bins_matches_brute_force():
+    # more bins than uint8 codes can hold: the search must switch to wide codes; reference = brute force over
+    # every gap between the 300 distinct values (Σ_leaves max(0, Σ reward), each leaf ≥ min_leaf units)
+    rng = np.random.default_rng(12)
+    x = rng.integers(0, 300, 3000).astype(float)
+    reward = np.sin(x / 40.0) + rng.normal(scale=0.5, size=x.size)
+    tree = fit_tree_rule(x[:, None], np.zeros(x.size), reward, ["x"], depth=1, max_bins=400, min_leaf=100)
+    values = np.unique(x)
+    best, best_cut = max(reward.sum(), 0.0), None
+    for lo, hi in zip(values[:-1], values[1:]):
+        left = x <= lo
+        if min(left.sum(), (~left).sum()) < 100:
+            continue
+        value = max(reward[left].sum(), 0.0) + max(reward[~left].sum(), 0.0)
+        if value > best + 1e-10 * np.abs(reward).sum():
+            best, best_cut = value, (lo + hi) / 2
+    assert tree.root.threshold == pytest.approx(best_cut)
+    assert tree.objective == pytest.approx(best / x.size)
+
+
+def test_shared_sorting_bins_each_training_subset_as_binning_it_alone():
+    # cross_fitted_tree sorts each column once for all folds; the result must equal binning every subset alone
+    from siteproof.blind.rules import _bin_matrices, _bin_matrix
+
+    rng = np.random.default_rng(13)
+    X = np.column_stack([rng.normal(size=900), rng.integers(0, 5, 900), np.round(rng.normal(size=900), 1)])
+    masks = [np.arange(900) % 3 != k for k in range(3)] + [np.ones(900, dtype=bool)]
+    for mask, (bins, cuts, n_bins) in zip(masks, _bin_matrices(X, masks, 16)):
+        alone_bins, alone_cuts, alone_n = _bin_matrix(X[mask], 16)
+        np.testing.assert_array_equal(bins, alone_bins)
+        assert n_bins == alone_n
+        for a, b in zip(cuts, alone_cuts):
+            np.testing.assert_array_equal(a, b)

@@ -35,9 +35,11 @@ from .average import (
     overlap_weighted,
     regression_adjusted,
 )
+from .binning import fold_bins
+from .bootstrap import shared_rank_metrics
 from .effects import CATE_KEYS, CateFit, fit_cate
 from ..core.errors import SiteproofError
-from .evaluation import blp, cost_curve, gates, r_loss_comparison, rank_metric
+from .evaluation import RankResult, blp, cost_curve, gates, r_loss_comparison
 from .nuisance import Nuisances, cross_fit_nuisances, make_folds
 from .rules import TreeRule, budget_rule, cross_fitted_tree, rule_value, threshold_rule
 from ..core.scores import arm_scores
@@ -161,7 +163,7 @@ def _tau_summary(tau: np.ndarray) -> dict[str, float]:
 
 def _evaluate_model(
     key: str, tau: np.ndarray, tau_const: np.ndarray, data: BlindData, nuis: Nuisances,
-    gamma: np.ndarray, config: BlindConfig,
+    gamma: np.ndarray, config: BlindConfig, ranks: dict[str, RankResult],
 ) -> dict[str, Any]:
     """All evaluation figures of one CATE model, with the blind AIPW scores."""
     y, w, e = data.y, data.w, nuis.e_hat
@@ -172,7 +174,7 @@ def _evaluate_model(
     out["gates"] = gates(tau, gamma, k=config.gates_groups).to_dict()
     out["blp"] = blp(y, w, e, tau, nuis.mu0).to_dict()
     for kind in ("autoc", "qini"):
-        out[kind] = rank_metric(tau, gamma, kind=kind, n_boot=config.n_boot, seed=config.seed).to_dict()
+        out[kind] = ranks[kind].to_dict()
     if data.cost is not None:
         out["cost_curve"] = cost_curve(tau, gamma, data.cost).to_dict()
     return out
@@ -291,11 +293,12 @@ def _run_blind(data: BlindData, config: BlindConfig, progress: Callable[[str], N
     auc_flags = covariate_auc_warnings(data.X, data.w, folds, data.feature_names)
     start = _timed(timings, "average", start)
 
+    bins = fold_bins(data.X, folds, config.seed) if config.cate_learner is None else None
     fits = {
         key: fit_cate(
             key, data.X, data.y, data.w, e_hat=nuis.e_hat, mu0=nuis.mu0, mu1=nuis.mu1, m_hat=nuis.m_hat,
             folds=folds, binary_outcome=data.binary_outcome, learner=config.cate_learner, seed=config.seed,
-            progress=tick, nuisance_models=nuis.models,
+            progress=tick, nuisance_models=nuis.models, bins=bins,
         )
         for key in config.models
     }
@@ -303,7 +306,9 @@ def _run_blind(data: BlindData, config: BlindConfig, progress: Callable[[str], N
 
     gamma = ates[ATE_ESTIMATORS.index("aipw")].scores
     tau_const = fits["constant"].tau
-    cate = [_evaluate_model(k, f.tau, tau_const, data, nuis, gamma, config) for k, f in fits.items()]
+    ranks = shared_rank_metrics({k: f.tau for k, f in fits.items() if k != "constant"}, gamma,
+                                n_boot=config.n_boot, seed=config.seed)
+    cate = [_evaluate_model(k, f.tau, tau_const, data, nuis, gamma, config, ranks.get(k, {})) for k, f in fits.items()]
     start = _timed(timings, "evaluation", start)
 
     rule_records, assignments, tree = _rule_claims(data, nuis, fits, config)

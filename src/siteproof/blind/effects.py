@@ -14,6 +14,10 @@ Models, selected by short keys (formulas in docs/methods-heterogeneity.md):
   (controls), regressions τ̂₁, τ̂₀ on X, combined as τ̂ = ê·τ̂₀ + (1 − ê)·τ̂₁.
 * ``r`` — R-learner (Nie & Wager 2021): weighted regression of (Y − m̂)/(W − ê) on X, weights (W − ê)².
 * ``dr`` — DR-learner (Kennedy 2023): regression of the AIPW pseudo-outcome Γ on X.
+
+With the default boosting second stage, every regression of fold k is fit on the bin codes of cuts found once
+on the units outside fold k (``binning.fold_bins``, scikit-learn's unweighted bin rule on all of them), shared
+by all models, so the R-learner's weighted fit no longer computes weighted quantiles in every fit.
 """
 
 from __future__ import annotations
@@ -28,8 +32,9 @@ from sklearn.utils.validation import has_fit_parameter
 
 from ..core.checks import in_unit_interval, unit_vector
 from ..core.errors import SiteproofError
-from ..core.learners import ConstantModel, fit_model, predict_model
+from ..core.learners import ConstantModel, MappedModel, fit_model, predict_model
 from ..core.scores import aipw_scores
+from .binning import FoldBins, fold_bins
 
 CATE_KEYS = ("constant", "s", "t", "x", "r", "dr")
 
@@ -42,6 +47,13 @@ SECOND_STAGE_BOOSTING: dict[str, Any] = {
     "learning_rate": 0.05, "max_iter": 300, "max_leaf_nodes": 8, "min_samples_leaf": 50,
     "l2_regularization": 1.0, "early_stopping": True, "validation_fraction": 0.2, "n_iter_no_change": 20,
 }
+
+#: The outcome regressions of the S-learner (and of the T-learner when it refits): the same trees with twice
+#: the learning rate and half the round cap (the same total shrinkage, 0.1 × 150 = 0.05 × 300).  An outcome
+#: carries far more signal than a pseudo-outcome, so its validation loss kept falling until the 300-round cap
+#: at 100 000 units and the S-learner cost as much as the R- and DR-learners together; early stopping on the
+#: 20 % validation split still picks the number of rounds below the cap.
+OUTCOME_STAGE_BOOSTING: dict[str, Any] = {**SECOND_STAGE_BOOSTING, "learning_rate": 0.1, "max_iter": 150}
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -59,13 +71,16 @@ class _DirectModel:
 
 @dataclass(frozen=True, eq=False)
 class _SingleModel:
-    """S-learner: τ̂(x) = f(x, 1) − f(x, 0) for one regression f of Y on (X, W)."""
+    """S-learner: τ̂(x) = f(z, 1) − f(z, 0) for one regression f of Y on (Z, W), Z = features(X) (the fold's
+    bin codes, or X itself)."""
 
     model: Any
+    features: Callable[[np.ndarray], np.ndarray] | None = None
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         X = np.asarray(X, dtype=float)
-        return predict_model(self.model, _with_arm(X, 1.0)) - predict_model(self.model, _with_arm(X, 0.0))
+        Z = X if self.features is None else self.features(X)
+        return predict_model(self.model, _with_arm(Z, 1.0)) - predict_model(self.model, _with_arm(Z, 0.0))
 
 
 @dataclass(frozen=True, eq=False)
@@ -149,6 +164,17 @@ class _Inputs:
     outcome_model: Any
     seed: int
     nuisance_models: Mapping[str, Sequence[Any]]
+    bins: FoldBins | None = None
+
+    def features(self, k: int, rows: np.ndarray) -> np.ndarray:
+        """The second stage's design for ``rows`` at fold position k: shared bin codes, or X itself."""
+        return self.X[rows] if self.bins is None else self.bins.train_matrix(k, rows)
+
+    def fit(self, estimator: Any, k: int, rows: np.ndarray, target: np.ndarray,
+            sample_weight: np.ndarray | None = None) -> Any:
+        """Fit ``estimator`` on (features(k, rows), target); with shared bins the model maps new X itself."""
+        model = fit_model(estimator, self.features(k, rows), target, seed=self.seed, sample_weight=sample_weight)
+        return model if self.bins is None else MappedModel(model, self.bins.bins[k].transform)
 
 
 def _validate(
@@ -195,7 +221,8 @@ def _fit_constant(d: _Inputs, tr: np.ndarray, k: int) -> ConstantModel:
 
 
 def _fit_single(d: _Inputs, tr: np.ndarray, k: int) -> _SingleModel:
-    return _SingleModel(fit_model(d.outcome_model, _with_arm(d.X[tr], d.w[tr]), d.y[tr], seed=d.seed))
+    model = fit_model(d.outcome_model, _with_arm(d.features(k, tr), d.w[tr]), d.y[tr], seed=d.seed)
+    return _SingleModel(model, None if d.bins is None else d.bins.bins[k].transform)
 
 
 def _fit_arm_difference(d: _Inputs, tr: np.ndarray, k: int) -> _ArmDifferenceModel:
@@ -203,31 +230,30 @@ def _fit_arm_difference(d: _Inputs, tr: np.ndarray, k: int) -> _ArmDifferenceMod
     if "mu0" in d.nuisance_models and "mu1" in d.nuisance_models:
         return _ArmDifferenceModel(d.nuisance_models["mu1"][k], d.nuisance_models["mu0"][k])
     t, c = tr[d.w[tr] == 1], tr[d.w[tr] == 0]
-    return _ArmDifferenceModel(fit_model(d.outcome_model, d.X[t], d.y[t], seed=d.seed),
-                               fit_model(d.outcome_model, d.X[c], d.y[c], seed=d.seed))
+    return _ArmDifferenceModel(d.fit(d.outcome_model, k, t, d.y[t]), d.fit(d.outcome_model, k, c, d.y[c]))
 
 
 def _fit_cross_imputed(d: _Inputs, tr: np.ndarray, k: int) -> _CrossImputedModel:
     """Imputed-effect regressions; the weight g(x) for new units is the propensity fold model when given."""
     t, c = tr[d.w[tr] == 1], tr[d.w[tr] == 0]
-    from_treated = fit_model(d.regressor, d.X[t], d.y[t] - d.mu0[t], seed=d.seed)
-    from_control = fit_model(d.regressor, d.X[c], d.mu1[c] - d.y[c], seed=d.seed)
+    from_treated = d.fit(d.regressor, k, t, d.y[t] - d.mu0[t])
+    from_control = d.fit(d.regressor, k, c, d.mu1[c] - d.y[c])
     if "propensity" in d.nuisance_models:
         weight = d.nuisance_models["propensity"][k]
     else:
-        weight = fit_model(d.regressor, d.X[tr], d.w[tr], seed=d.seed)
+        weight = d.fit(d.regressor, k, tr, d.w[tr])
     return _CrossImputedModel(from_treated, from_control, weight)
 
 
 def _fit_residual(d: _Inputs, tr: np.ndarray, k: int) -> _DirectModel:
     resid_w = d.w[tr] - d.e_hat[tr]
     pseudo = (d.y[tr] - d.m_hat[tr]) / resid_w
-    return _DirectModel(fit_model(d.regressor, d.X[tr], pseudo, seed=d.seed, sample_weight=resid_w**2))
+    return _DirectModel(d.fit(d.regressor, k, tr, pseudo, sample_weight=resid_w**2))
 
 
 def _fit_doubly_robust(d: _Inputs, tr: np.ndarray, k: int) -> _DirectModel:
     pseudo = aipw_scores(d.y[tr], d.w[tr], d.e_hat[tr], d.mu0[tr], d.mu1[tr])
-    return _DirectModel(fit_model(d.regressor, d.X[tr], pseudo, seed=d.seed))
+    return _DirectModel(d.fit(d.regressor, k, tr, pseudo))
 
 
 _FITTERS: dict[str, Callable[[_Inputs, np.ndarray, int], Any]] = {
@@ -240,14 +266,32 @@ _FITTERS: dict[str, Callable[[_Inputs, np.ndarray, int], Any]] = {
 }
 
 
-def _out_of_fold_value(key: str, d: _Inputs, model: Any, te: np.ndarray) -> np.ndarray:
-    """τ̂ for the held-out fold; ``t`` uses the cross-fitted arrays, ``x`` weights with the cross-fitted ê."""
+def _fits_second_stage(key: str, nuisance_models: Mapping[str, Sequence[Any]]) -> bool:
+    """Whether ``key`` fits any regression of its own (``t`` reuses the arm models when given)."""
+    if key == "constant":
+        return False
+    return not (key == "t" and "mu0" in nuisance_models and "mu1" in nuisance_models)
+
+
+def _on_features(model: Any, Z: np.ndarray) -> np.ndarray:
+    """Predict from the second stage's own design Z (a bin-code wrapper's inner model reads Z directly)."""
+    return predict_model(model.model if isinstance(model, MappedModel) else model, Z)
+
+
+def _out_of_fold_value(key: str, d: _Inputs, model: Any, k: int, te: np.ndarray) -> np.ndarray:
+    """τ̂ for the held-out fold from its precomputed design (bin codes under fold k's cuts, or X);
+    ``t`` uses the cross-fitted arrays, ``x`` weights with the cross-fitted ê."""
     if key == "t":
         return d.mu1[te] - d.mu0[te]
+    if key == "constant":
+        return model.predict(d.X[te])
+    Z = d.features(k, te)
     if key == "x":
         g = d.e_hat[te]
-        return g * predict_model(model.from_control, d.X[te]) + (1.0 - g) * predict_model(model.from_treated, d.X[te])
-    return model.predict(d.X[te])
+        return g * _on_features(model.from_control, Z) + (1.0 - g) * _on_features(model.from_treated, Z)
+    if key == "s":
+        return predict_model(model.model, _with_arm(Z, 1.0)) - predict_model(model.model, _with_arm(Z, 0.0))
+    return _on_features(model.model, Z)
 
 
 def fit_cate(
@@ -266,6 +310,7 @@ def fit_cate(
     seed: int = 0,
     progress: Callable[[str], None] | None = None,
     nuisance_models: Mapping[str, Sequence[Any]] | None = None,
+    bins: FoldBins | None = None,
 ) -> CateFit:
     """Fit the CATE model ``key`` out-of-fold: τ̂(x_i) from second-stage models trained on folds ≠ fold(i).
 
@@ -280,12 +325,16 @@ def fit_cate(
         regressions of ``s`` and ``t`` are gradient-boosted classifiers returning P(Y=1).
     learner : scikit-learn regressor used for every second-stage regression (a classifier is used through
         P(class 1)); None → histogram gradient boosting with the stronger regularisation of
-        ``SECOND_STAGE_BOOSTING`` (pseudo-outcomes are far noisier than outcomes).  Learners with an unset
+        ``SECOND_STAGE_BOOSTING`` (pseudo-outcomes are far noisier than outcomes), ``OUTCOME_STAGE_BOOSTING``
+        for the outcome regressions of ``s`` (and of ``t`` when it refits).  Learners with an unset
         ``random_state`` get ``seed``.  ``r`` needs a learner whose ``fit`` takes ``sample_weight``.
     progress : optional callback, called once per fold with a label.
     nuisance_models : optional fitted nuisance models per fold (``Nuisances.models``: "mu0", "mu1",
         "propensity" → one model per fold, trained on the other folds).  When given, ``t`` uses the arm models
         and ``x`` the propensity models for new units instead of refitting them.
+    bins : optional :func:`~siteproof.blind.binning.fold_bins` of (X, folds) to share between models.  With the
+        default learner every second-stage fit of fold k runs on the bin codes of fold k's cuts (found on the
+        units outside fold k); they are computed here when not given.  Ignored with a user ``learner``.
 
     Fold use (all keys): for each fold k, the second stage is fit on units with fold ≠ k and predicts
     fold k.  Exceptions: ``t`` takes τ̂ = μ̂₁ − μ̂₀ straight from the cross-fitted arrays; its fold models (for
@@ -299,8 +348,8 @@ def fit_cate(
     X, y, w, e_hat, mu0, mu1, m_hat, folds = _validate(key, X, y, w, e_hat, mu0, mu1, m_hat, folds, binary_outcome)
     if learner is None:
         regressor: Any = HistGradientBoostingRegressor(**SECOND_STAGE_BOOSTING, random_state=seed)
-        outcome_model: Any = (HistGradientBoostingClassifier(**SECOND_STAGE_BOOSTING, random_state=seed)
-                              if binary_outcome else regressor)
+        outcome_class = HistGradientBoostingClassifier if binary_outcome else HistGradientBoostingRegressor
+        outcome_model: Any = outcome_class(**OUTCOME_STAGE_BOOSTING, random_state=seed)
     else:
         regressor = outcome_model = learner
     if key == "r" and not _accepts_weights(regressor):
@@ -308,7 +357,12 @@ def fit_cate(
             f"the learner {type(regressor).__name__} does not accept sample_weight, which the R-learner needs",
             "pass a learner whose fit() takes sample_weight (e.g. HistGradientBoostingRegressor)",
         )
-    d = _Inputs(X, y, w, e_hat, mu0, mu1, m_hat, folds, regressor, outcome_model, seed, nuisance_models or {})
+    nuisance_models = nuisance_models or {}
+    if learner is not None or not _fits_second_stage(key, nuisance_models):
+        bins = None
+    elif bins is None:
+        bins = fold_bins(X, folds, seed)
+    d = _Inputs(X, y, w, e_hat, mu0, mu1, m_hat, folds, regressor, outcome_model, seed, nuisance_models, bins)
     bounds = (-1.0, 1.0) if binary_outcome else None
     tau = np.empty(X.shape[0], dtype=float)
     fold_ids = np.unique(folds)
@@ -318,7 +372,7 @@ def fit_cate(
         if key in ("s", "t", "x"):
             _need_both_arms(w[tr], key, int(k))
         model = _FITTERS[key](d, tr, position)
-        tau[te] = _out_of_fold_value(key, d, model, te)
+        tau[te] = _out_of_fold_value(key, d, model, position, te)
         models.append(model)
         if progress is not None:
             progress(f"{key} fold {int(k) + 1}/{fold_ids.size}")

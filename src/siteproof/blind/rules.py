@@ -243,15 +243,14 @@ class TreeRule:
                 "text": self.to_text()}
 
 
-def _feature_bins(x: np.ndarray, max_bins: int) -> tuple[np.ndarray, np.ndarray]:
-    """Cut points of one feature and every unit's bin index (bin ≤ t ⇔ x ≤ cuts[t]).
+def _cuts_of_sorted(xs: np.ndarray, max_bins: int) -> np.ndarray:
+    """Cut points of one feature from its sorted values (bin ≤ t ⇔ x ≤ cuts[t]).
 
     With at most ``max_bins`` distinct values every gap between neighbours is a candidate; otherwise the
     candidates are the empirical quantiles at levels 1/B, …, (B−1)/B.  A cut is placed half-way between a
     candidate value and the next larger observed value, so it splits the data exactly where the candidate does
     and reads naturally (0/1 indicators split at 0.5).
     """
-    xs = np.sort(x)
     distinct = xs[np.r_[True, xs[1:] != xs[:-1]]]
     if distinct.size <= max_bins:
         lower = np.arange(distinct.size - 1)
@@ -260,20 +259,50 @@ def _feature_bins(x: np.ndarray, max_bins: int) -> tuple[np.ndarray, np.ndarray]
         values = xs[np.ceil(levels * xs.size).astype(np.intp) - 1]
         lower = np.unique(np.searchsorted(distinct, values))
         lower = lower[lower < distinct.size - 1]
-    cuts = (distinct[lower] + distinct[lower + 1]) / 2.0
-    return cuts, np.searchsorted(cuts, x, side="left").astype(np.intp)
+    return (distinct[lower] + distinct[lower + 1]) / 2.0
+
+
+def _feature_bins(x: np.ndarray, max_bins: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cut points of one feature (:func:`_cuts_of_sorted`) and every unit's bin index (bin ≤ t ⇔ x ≤ cuts[t])."""
+    cuts = _cuts_of_sorted(np.sort(x), max_bins)
+    return cuts, np.searchsorted(cuts, x, side="left")
+
+
+def _code_dtype(max_bins: int) -> type:
+    return np.uint8 if max_bins <= 256 else np.intp
 
 
 def _bin_matrix(X: np.ndarray, max_bins: int) -> tuple[np.ndarray, list[np.ndarray], int]:
-    """Bin every column once: (p, n) bin indices (one contiguous row per feature), the cut points per feature
-    and the common bin count B."""
-    cuts, columns = [], []
-    for column in np.ascontiguousarray(X.T):
-        c, b = _feature_bins(column, max_bins)
-        cuts.append(c)
-        columns.append(b)
-    n_bins = max(1, max(c.size + 1 for c in cuts))
-    return np.stack(columns), cuts, n_bins
+    """Bin every column once: (p, n) bin indices (one contiguous row per feature; uint8 when the bins fit),
+    the cut points per feature and the common bin count B."""
+    cuts = []
+    bins = np.empty((X.shape[1], X.shape[0]), dtype=_code_dtype(max_bins))
+    for j, column in enumerate(np.ascontiguousarray(X.T)):
+        cut, bins[j] = _feature_bins(column, max_bins)
+        cuts.append(cut)
+    return bins, cuts, max(1, max(c.size + 1 for c in cuts))
+
+
+def _bin_matrices(X: np.ndarray, subsets: Sequence[np.ndarray], max_bins: int) -> list[tuple[np.ndarray, list[np.ndarray], int]]:
+    """:func:`_bin_matrix` of X[subset] for every boolean row mask, sorting each column once for all of them.
+
+    A subset's sorted values are read off the sorted column in order; every unit's code under the subset's
+    cuts follows from where the cuts fall in the sorted column (units between cut t−1 and cut t get code t).
+    """
+    n, p = X.shape
+    bins = [np.empty((p, int(mask.sum())), dtype=_code_dtype(max_bins)) for mask in subsets]
+    cuts: list[list[np.ndarray]] = [[] for _ in subsets]
+    codes = np.empty(n, dtype=_code_dtype(max_bins))
+    for j, column in enumerate(np.ascontiguousarray(X.T)):
+        order = np.argsort(column, kind="stable")
+        ordered = column[order]
+        for f, mask in enumerate(subsets):
+            cut = _cuts_of_sorted(ordered[mask[order]], max_bins)
+            edges = np.concatenate([[0], np.searchsorted(ordered, cut, side="right"), [n]])
+            codes[order] = np.repeat(np.arange(cut.size + 1, dtype=codes.dtype), np.diff(edges))
+            bins[f][j] = codes[mask]
+            cuts[f].append(cut)
+    return [(b, c, max(1, max(k.size + 1 for k in c))) for b, c in zip(bins, cuts)]
 
 
 def _pair_histograms(bins: np.ndarray, reward: np.ndarray, n_bins: int) -> tuple[np.ndarray, np.ndarray]:
@@ -286,7 +315,7 @@ def _pair_histograms(bins: np.ndarray, reward: np.ndarray, n_bins: int) -> tuple
     sums = np.empty((p, p, n_bins, n_bins))
     counts = np.empty((p, p, n_bins, n_bins))
     for j in range(p):
-        root_code = bins[j] * n_bins
+        root_code = bins[j].astype(np.intp) * n_bins
         for k in range(j, p):
             code = root_code + bins[k]
             sums[j, k] = np.bincount(code, weights=reward, minlength=size).reshape(n_bins, n_bins)
@@ -429,12 +458,18 @@ def fit_tree_rule(
     g0, g1 = _arm_pair(gamma0, gamma1)
     names = tuple(str(name) for name in feature_names)
     _check_tree_inputs(X, g0.size, names, depth, max_bins)
+    return _fit_binned(_bin_matrix(X, max_bins), g0, g1 - _cost_vector(cost, g0.size) - g0, names, depth,
+                       min_leaf, label)
+
+
+def _fit_binned(binned: tuple[np.ndarray, list[np.ndarray], int], g0: np.ndarray, reward: np.ndarray,
+                names: tuple[str, ...], depth: int, min_leaf: int | None, label: str) -> TreeRule:
+    """The search of :func:`fit_tree_rule` on binned features (bins, cuts, B) with reward R = Γ₁ − c − Γ₀."""
+    bins, cuts, n_bins = binned
     n = g0.size
     min_leaf = _default_min_leaf(n) if min_leaf is None else int(min_leaf)
     if min_leaf < 1:
         raise SiteproofError(f"min_leaf = {min_leaf} is below 1", "use a minimum leaf size of at least 1 unit")
-    reward = g1 - _cost_vector(cost, n) - g0
-    bins, cuts, n_bins = _bin_matrix(X, max_bins)
     tol = 1e-10 * float(np.abs(reward).sum())
     best, root = _search(bins, reward, n_bins, depth, min_leaf, tol)
     node = _build(root, bins, cuts, reward)
@@ -476,15 +511,18 @@ def cross_fitted_tree(
     fold_ids = np.unique(folds)
     if fold_ids.size < 2:
         raise SiteproofError("cross-fitting needs at least 2 folds", "use K ≥ 2 folds")
-    c = _cost_vector(cost, g0.size)
+    names = tuple(str(name) for name in feature_names)
+    _check_tree_inputs(X, g0.size, names, depth, max_bins)
+    reward = g1 - _cost_vector(cost, g0.size) - g0
+    trains = [folds != k for k in fold_ids] + [np.ones(g0.size, dtype=bool)]
+    binned = _bin_matrices(X, trains, max_bins)
     pi = np.zeros(g0.size, dtype=np.int8)
     per_fold = []
-    for k in fold_ids:
-        train = folds != k
-        tree = fit_tree_rule(X[train], g0[train], g1[train], feature_names, depth=depth, max_bins=max_bins,
-                             cost=c[train], min_leaf=min_leaf, label=f"fit on folds other than {int(k)}")
+    for k, train, fold_bins in zip(fold_ids, trains, binned):
+        tree = _fit_binned(fold_bins, g0[train], reward[train], names, depth, min_leaf,
+                           f"fit on folds other than {int(k)}")
         pi[~train] = tree.predict(X[~train])
         per_fold.append(tree)
-    full = fit_tree_rule(X, g0, g1, feature_names, depth=depth, max_bins=max_bins, cost=c, min_leaf=min_leaf,
-                         label="fit on all units (the rule to deploy; valued by the out-of-fold assignments)")
+    full = _fit_binned(binned[-1], g0, reward, names, depth, min_leaf,
+                       "fit on all units (the rule to deploy; valued by the out-of-fold assignments)")
     return pi, full, per_fold

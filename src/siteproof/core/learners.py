@@ -8,7 +8,7 @@ read as P(class 1); a classifier asked to fit a target with one class only becom
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from sklearn.base import clone, is_classifier
@@ -25,6 +25,17 @@ class ConstantModel:
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         return np.full(np.asarray(X).shape[0], self.value, dtype=float)
+
+
+@dataclass(frozen=True, eq=False)
+class MappedModel:
+    """A model fitted on transform(X) (e.g. shared bin codes): predicts ``predict_model(model, transform(X))``."""
+
+    model: Any
+    transform: Callable[[np.ndarray], np.ndarray]
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        return predict_model(self.model, self.transform(np.asarray(X, dtype=float)))
 
 
 def weight_parameter(estimator: Any) -> str:
@@ -51,8 +62,8 @@ def fit_model(
 
 
 def predict_model(model: Any, X: np.ndarray) -> np.ndarray:
-    """Regressor → predict; classifier → P(class 1)."""
-    if isinstance(model, ConstantModel) or not is_classifier(model):
+    """Regressor → predict; classifier → P(class 1) (a :class:`MappedModel` already returns either)."""
+    if isinstance(model, (ConstantModel, MappedModel)) or not is_classifier(model):
         return np.asarray(model.predict(X), dtype=float)
     classes = list(model.classes_)
     if 1 not in classes:
