@@ -144,3 +144,26 @@ def test_sets_with_sensitivity_page(study, tmp_path):
     write_sets(result, tmp_path / "o")
     page = (tmp_path / "o" / "sets.html").read_text()
     assert "Would a sensitivity analysis have warned?" in page and 'id="fig-sensitivity"' in page
+
+
+def test_the_study_file_names_the_sets(trial, tmp_path):
+    """[covariate_sets] in the study file gives the same sets as the --set flags (and as the Python mapping)."""
+    from siteproof.intake.spec import load_spec_toml
+
+    data = tmp_path / "trial.csv"
+    trial.data.to_csv(data, index=False)
+    roles = trial.design.roles
+    rates = ", ".join(f'"{site}" = {rate}' for site, rate in trial.rates.items())
+    (tmp_path / "study.toml").write_text(
+        f'data = "trial.csv"\noutcome = "{roles.outcome}"\ntreatment = "{roles.treatment}"\nsite = "{roles.site}"\n'
+        f'id = "{roles.id}"\ncovariates = {json.dumps(COVARIATES)}\nseed = 4\nrates = {{ {rates} }}\n'
+        '[covariate_sets]\nage = ["age"]\nfluency = "spring_wcpm, grade"\n')
+    spec = load_spec_toml(tmp_path / "study.toml")
+    assert spec.covariate_sets == {"age": ["age"], "fluency": ["spring_wcpm", "grade"]}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SiteproofWarning)
+        study = load_study(spec)
+        from_file = compare_covariate_sets(study, None, _config())
+        from_flags = compare_covariate_sets(study, {"age": ["age"], "fluency": ["spring_wcpm", "grade"]}, _config())
+    assert json.dumps(from_file.to_dict(), sort_keys=True, default=str) == \
+        json.dumps(from_flags.to_dict(), sort_keys=True, default=str)

@@ -478,7 +478,7 @@ def confound(
 def sets(
     flags: DataFlags,
     out: OutOpt,
-    set_: Annotated[Optional[list[str]], typer.Option("--set", help="A covariate set NAME=col1,col2 (repeatable).")] = None,
+    set_: Annotated[Optional[list[str]], typer.Option("--set", help="A covariate set NAME=col1,col2 (repeatable; default: [covariate_sets] of the study file).")] = None,
     drop_each: Annotated[bool, typer.Option("--drop-each", help="Also run the full set and every leave-one-covariate-out set.")] = False,
     sensitivity: Annotated[bool, typer.Option("--sensitivity", help="Add the omitted-variable-bias analysis of each set.")] = False,
     folds: FoldsOpt = 5,
@@ -491,7 +491,7 @@ def sets(
     from .covsets import SETS_FILE, SETS_PAGE, parse_set_flags, run_sets
     from .reporting.sets_page import sets_table
 
-    result = run_sets(spec, parse_set_flags(set_ or []), out, BlindConfig(seed=spec.seed, folds=folds), drop_each=drop_each,
+    result = run_sets(spec, parse_set_flags(set_) if set_ else None, out, BlindConfig(seed=spec.seed, folds=folds), drop_each=drop_each,
                       margin=flags.margin, sensitivity=sensitivity, force=force)
     console.print(sets_table(result.to_dict()))
     console.print(f"\nsets: {out / SETS_FILE}   page: {out / SETS_PAGE}")

@@ -192,7 +192,7 @@ def resolve_sets(available: Sequence[str], sets: Mapping[str, Sequence[str]] | N
         for c in available:
             out.setdefault(f"without {c}", tuple(a for a in available if a != c))
     if not out:
-        raise SiteproofError("no covariate set given", "give --set NAME=col1,col2 (repeatable) or --drop-each")
+        raise SiteproofError("no covariate set given", "give --set NAME=col1,col2 (repeatable), [covariate_sets] in the study file, or --drop-each")
     return out
 
 
@@ -232,7 +232,8 @@ def compare_covariate_sets(
 ) -> CovariateSetsResult:
     """Blind AIPW under each covariate set on the same folds and seed, scored against one unmasking.
 
-    ``sets`` maps a name to covariate columns (names as in the data); ``drop_each`` adds the full set and every
+    ``sets`` maps a name to covariate columns (names as in the data; default: the study file's
+    ``[covariate_sets]``); ``drop_each`` adds the full set and every
     leave-one-covariate-out set.  ``margin`` is the equivalence margin (default: the locked plan's ATE-family rule, :func:`sets_margin`).
     ``sensitivity`` adds, per set, the omitted-variable-bias analysis (``unmask.sensitivity``) with benchmarks
     k× each of the set's covariates: would it have warned of the bias the unmasking found?
@@ -240,7 +241,7 @@ def compare_covariate_sets(
     study = spec if isinstance(spec, Study) else load_study(spec)
     seed = study.spec.seed if config is None else config.seed
     config = config or BlindConfig(seed=seed)
-    named = resolve_sets(study.blind.covariates, sets, drop_each)
+    named = resolve_sets(study.blind.covariates, study.spec.covariate_sets if sets is None else sets, drop_each)
     data = study.blind
     folds = make_folds(data.w, config.folds, config.seed)
     truth = design_ate(data.y, data.w, study.site, study.stratum)

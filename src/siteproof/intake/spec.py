@@ -55,6 +55,7 @@ class StudySpec:
     drop_columns: list[str] = field(default_factory=list)
     site_derived: list[str] = field(default_factory=list)
     name: str | None = None
+    covariate_sets: dict[str, list[str]] | None = None
 
     def __post_init__(self) -> None:
         """Refuse a ``data`` that is neither a file path nor a pandas DataFrame."""
@@ -178,8 +179,18 @@ def _toml_names(key: str, value: Any, where: str) -> list[str]:
     raise SiteproofError(f"{where}: '{key}' must be a list of column names", f'write {key} = ["a", "b"]')
 
 
+def _toml_sets(value: Any, where: str) -> dict[str, list[str]]:
+    """``[covariate_sets]`` as ``NAME = ["a", "b"]`` (or ``NAME = "a,b"``): the sets of ``siteproof sets``."""
+    if not isinstance(value, dict) or not value:
+        raise SiteproofError(f"{where}: 'covariate_sets' must be a table of named lists",
+                             'write [covariate_sets] with lines like baseline = ["age", "grade"]')
+    return {str(name): _toml_names(f"covariate_sets.{name}", cols, where) for name, cols in value.items()}
+
+
 def _toml_value(key: str, value: Any, where: str) -> Any:
     """Check the type of one study-file entry and convert it to the StudySpec field type."""
+    if key == "covariate_sets":
+        return _toml_sets(value, where)
     if key == "rates":
         return _toml_rates(value, where)
     if key in ("covariates", "keep_columns", "drop_columns", "site_derived"):
