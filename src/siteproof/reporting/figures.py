@@ -27,10 +27,9 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
-from ..core.interpret import DIFFERENT, Z_90, Z_95
 from . import theme
 from .figures_base import (MANY_SITES, Curve, Interval, Rendered, extremes, finite_values, height_for, identity_line,
-                           intervals_h, label_extremes, labels_on_y, new_figure, pad_x, place_labels, render,
+                           intervals_h, label_extremes, labels_on_y, new_figure, pad_x, paired_differences, place_labels, render,
                            sorted_dots, span_unit, styled)
 from .figures_curves import curves_figure, gates_figure
 
@@ -195,19 +194,7 @@ def average_effect_figure(blind: Sequence[Interval], design: Interval, differenc
     left.set_xlabel(f"average effect ({unit})")
     left.legend(loc="upper center", bbox_to_anchor=(0.5, -0.22), ncols=2)
 
-    right.axvspan(-margin, margin, color=theme.ROLE["band"], alpha=0.14, zorder=0, label="equivalence band ±δ")
-    right.axvline(0.0, color=theme.INK, lw=0.9)
-    for row, yy in zip(differences, y):
-        if not row.finite:
-            continue
-        se = (row.high - row.low) / (2 * Z_95)
-        right.plot([row.low, row.high], [yy, yy], color=theme.ROLE["blind"], lw=1.4)
-        right.plot([row.estimate - Z_90 * se, row.estimate + Z_90 * se], [yy, yy], color=theme.ROLE["blind"], lw=5,
-                   solid_capstyle="butt", alpha=0.75)
-        right.plot(row.estimate, yy, "o", color=theme.ROLE["blind"], mfc="white", mew=1.4, ms=6.5, zorder=3)
-    for text, yy in zip(verdicts, y):
-        right.annotate(text, (1.02, yy), xycoords=("axes fraction", "data"), va="center", ha="left",
-                       fontsize=theme.BASE_FONT - 0.5, fontweight="bold" if text == DIFFERENT else "normal")
+    paired_differences(right, differences, y, verdicts, margin)
     right.set_xlabel(f"blind − design, paired ({unit})")
     handles, labels = right.get_legend_handles_labels()
     handles += [Line2D([], [], color=theme.ROLE["blind"], lw=1.4), Line2D([], [], color=theme.ROLE["blind"], lw=5, alpha=0.75)]

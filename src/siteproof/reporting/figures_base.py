@@ -21,6 +21,7 @@ from matplotlib.figure import Figure
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.text import Annotation, Text
 
+from ..core.interpret import DIFFERENT, Z_90, Z_95
 from . import theme
 
 P = ParamSpec("P")
@@ -122,6 +123,26 @@ def intervals_h(ax: Axes, rows: Sequence[Interval], y: np.ndarray, role: str, la
         ax.plot(row.estimate, yy, theme.MARKER.get(role, "o"), color=colour, mfc=colour if filled else "white",
                 mew=1.4, ms=6.5, label=label if first else None, zorder=3)
         first = False
+
+
+def paired_differences(ax: Axes, rows: Sequence[Interval], y: np.ndarray, verdicts: Sequence[str],
+                       margin: float) -> None:
+    """Paired differences D = blind − design against the equivalence band ±δ: the 95 % CI (thin; difference
+    test), the 90 % CI (thick; equivalence test, Schuirmann 1987) and the verdict written at the end of each row.
+    The 90 % half-width is z₀.₉₅·SE with SE recovered from the 95 % Wald interval."""
+    ax.axvspan(-margin, margin, color=theme.ROLE["band"], alpha=0.14, zorder=0, label="equivalence band ±δ")
+    ax.axvline(0.0, color=theme.INK, lw=0.9)
+    for row, yy in zip(rows, y):
+        if not row.finite:
+            continue
+        se = (row.high - row.low) / (2 * Z_95)
+        ax.plot([row.low, row.high], [yy, yy], color=theme.ROLE["blind"], lw=1.4)
+        ax.plot([row.estimate - Z_90 * se, row.estimate + Z_90 * se], [yy, yy], color=theme.ROLE["blind"], lw=5,
+                solid_capstyle="butt", alpha=0.75)
+        ax.plot(row.estimate, yy, "o", color=theme.ROLE["blind"], mfc="white", mew=1.4, ms=6.5, zorder=3)
+    for text, yy in zip(verdicts, y):
+        ax.annotate(text, (1.02, yy), xycoords=("axes fraction", "data"), va="center", ha="left",
+                    fontsize=theme.BASE_FONT - 0.5, fontweight="bold" if text == DIFFERENT else "normal")
 
 
 def labels_on_y(ax: Axes, labels: Sequence[str]) -> np.ndarray:

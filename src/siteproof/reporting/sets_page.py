@@ -18,11 +18,10 @@ from typing import Any, Sequence
 import numpy as np
 from matplotlib.figure import Figure
 
-from ..core.interpret import DIFFERENT, Z_90, Z_95
 from ..core.outputs import atomic_write_bytes, atomic_write_text
 from . import theme
 from .document import FIGURE_DIR, Document, FigureBlock, Section, Table, Text, Verdict
-from .figures_base import Interval, height_for, labels_on_y, new_figure, pad_x, render, styled
+from .figures_base import Interval, height_for, labels_on_y, new_figure, pad_x, paired_differences, render, styled
 from .formatting import fmt, fmt_ci
 
 PAGE_TITLE = "What did it take to recover the trial?"
@@ -35,19 +34,7 @@ def bias_by_set_figure(rows: Sequence[Interval], verdicts: Sequence[str], margin
     fig, axes = new_figure(theme.FIG_WIDTH, height_for(len(rows), 1.2))
     ax = axes[0, 0]
     y = labels_on_y(ax, [r.label for r in rows])
-    ax.axvspan(-margin, margin, color=theme.ROLE["band"], alpha=0.14, zorder=0, label="equivalence band ±δ")
-    ax.axvline(0.0, color=theme.INK, lw=0.9)
-    for row, yy in zip(rows, y):
-        if not row.finite:
-            continue
-        se = (row.high - row.low) / (2 * Z_95)
-        ax.plot([row.low, row.high], [yy, yy], color=theme.ROLE["blind"], lw=1.4)
-        ax.plot([row.estimate - Z_90 * se, row.estimate + Z_90 * se], [yy, yy], color=theme.ROLE["blind"], lw=5,
-                solid_capstyle="butt", alpha=0.75)
-        ax.plot(row.estimate, yy, "o", color=theme.ROLE["blind"], mfc="white", mew=1.4, ms=6.5, zorder=3)
-    for text, yy in zip(verdicts, y):
-        ax.annotate(text, (1.02, yy), xycoords=("axes fraction", "data"), va="center", ha="left",
-                    fontsize=theme.BASE_FONT - 0.5, fontweight="bold" if text == DIFFERENT else "normal")
+    paired_differences(ax, rows, y, verdicts, margin)
     ax.set_xlabel(f"bias: blind − design, paired ({unit})")
     ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.25), ncols=2)
     pad_x(ax, [v for r in rows for v in (r.low, r.high)] + [-margin, margin])
