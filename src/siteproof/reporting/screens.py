@@ -127,6 +127,21 @@ def _v(verdict: str) -> Text:
     return Text(verdict, style=_STYLE.get(verdict, ""))
 
 
+def _verdict_cell(raw: str, adjusted: str) -> Text:
+    """The verdict that counts (adjusted within the claim family); the raw verdict below it when they differ."""
+    if not adjusted or adjusted == raw:
+        return _v(adjusted or raw)
+    cell = _v(adjusted)
+    cell.append(f"\n(raw: {raw})", style="dim")
+    return cell
+
+
+def _pbr_cell(pbr: dict | None) -> str:
+    """Percent bias reduction on one line and its 95 % CI on the next ('n.m.': naive D not distinguishable)."""
+    text = fmt_pbr(pbr, "n.m.")
+    return text.replace(" [", "\n[", 1) if pbr else ""
+
+
 def _num(x: float | None, digits: int = 3) -> str:
     """A compact number (``digits`` significant digits) for a scorecard cell."""
     return fmt_sig(x, digits)
@@ -178,7 +193,7 @@ def _ate_table(scorecard: Scorecard, unit: str) -> Table:
     t = _table(
         f"Average effect ({unit} units): each blind estimator vs the pooled design-based ATE",
         [("estimator", "left"), ("blind", "right"), ("design", "right"), ("D ± 95% CI", "right"),
-         ("bias red. %\n[95% CI]", "right"), ("verdict", "left"), ("adjusted", "left")],
+         ("bias red.\n[95% CI]", "right"), ("verdict\n(adjusted)", "left")],
     )
     rows = _rows(scorecard)
     for row in scorecard.ate:
@@ -186,13 +201,14 @@ def _ate_table(scorecard: Scorecard, unit: str) -> Table:
         claim = rows.get(f"ate.{row.estimator}", {})
         name = row.estimator + (" (ATO)" if row.same_estimand is not None else "")
         if row.same_estimand is None:
-            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), fmt_pbr(claim.get("percent_bias_reduction"), "n.m."), _v(c.verdict),
-                      _v(claim.get("verdict_adjusted", "")))
+            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _pbr_cell(claim.get("percent_bias_reduction")),
+                      _verdict_cell(c.verdict, claim.get("verdict_adjusted", "")))
         else:
             same = row.same_estimand
-            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), fmt_pbr(claim.get("percent_bias_reduction"), "n.m."), _v(c.verdict), "—")
-            t.add_row("  vs design ATO", _num(same.blind), _num(same.design), _diff(same), "", _v(same.verdict),
-                      _v(claim.get("verdict_adjusted", "")))
+            t.add_row(name, _num(c.blind), _num(c.design), _diff(c), _pbr_cell(claim.get("percent_bias_reduction")),
+                      Text("— (ATO: next row)", style="dim"))
+            t.add_row("  vs design ATO", _num(same.blind), _num(same.design), _diff(same), "",
+                      _verdict_cell(same.verdict, claim.get("verdict_adjusted", "")))
     return t
 
 
@@ -205,7 +221,7 @@ def _cate_table(scorecard: Scorecard, unit: str) -> Table:
     t = _table(
         f"Effect rankings: AUTOC ({unit} units) and BLP β₂ (ideal 1), blind vs design scores",
         [("model", "left"), ("AUTOC\nblind", "right"), ("AUTOC\ndesign", "right"), ("D ± 95% CI", "right"),
-         ("verdict", "left"), ("adjusted", "left"), ("β₂ blind/\ndesign", "right"), ("heter-\nogeneity", "left")],
+         ("verdict\n(adjusted)", "left"), ("β₂ blind/\ndesign", "right"), ("heter-\nogeneity", "left")],
     )
     rows = _rows(scorecard)
     for row in scorecard.cate:
@@ -213,7 +229,7 @@ def _cate_table(scorecard: Scorecard, unit: str) -> Table:
         beta = f"{_num(b2.blind, 2)}/{_num(b2.design, 2)}" if b2 is not None else "—"
         status = row.heterogeneity["status"]
         adjusted = rows.get(f"cate.{row.model}.autoc", {}).get("verdict_adjusted", "")
-        t.add_row(row.model, _num(a.blind), _num(a.design), _diff(a), _v(a.verdict), _v(adjusted), beta,
+        t.add_row(row.model, _num(a.blind), _num(a.design), _diff(a), _verdict_cell(a.verdict, adjusted), beta,
                   HETEROGENEITY_SHORT.get(status, status))
     return t
 
@@ -227,7 +243,7 @@ def _rules_table(scorecard: Scorecard, unit: str) -> Table:
     t = _table(
         f"Treatment rules: gain over random allocation at the same treated share ({unit} units)",
         [("rule", "left"), ("treat\n%", "right"), ("gain\nblind", "right"), ("gain\ndesign", "right"),
-         ("D ± 95% CI", "right"), ("verdict", "left"), ("adjusted", "left"), ("sites\n+", "right")],
+         ("D ± 95% CI", "right"), ("verdict\n(adjusted)", "left"), ("sites\n+", "right")],
     )
     rows = _rows(scorecard)
     t.caption = (f"{len(shown)} of {len(scorecard.rules)} rules shown; the other budget rules are in "
@@ -238,7 +254,8 @@ def _rules_table(scorecard: Scorecard, unit: str) -> Table:
         agree, total = row.sites_agreeing
         name = row.rule if row.has_contrast else f"{row.rule}*"
         t.add_row(name, fmt(100 * row.treated_share, 0), _num(g.blind), _num(g.design), _diff(g),
-                  _v(row.verdict), _v(rows.get(f"rule.{row.rule}", {}).get("verdict_adjusted", "")), f"{agree}/{total}")
+                  _verdict_cell(row.verdict, rows.get(f"rule.{row.rule}", {}).get("verdict_adjusted", "")),
+                  f"{agree}/{total}")
     return t
 
 
@@ -277,9 +294,9 @@ def _footnote(scorecard: Scorecard, unit: str) -> Text:
         f"shared bootstrap half-samples). δ = {_num(scorecard.margin)} {unit} units is the equivalence margin of "
         "the average effects; rule gains and rankings use min(δ, half their blind value), β₂ its own margin "
         f"{_num(scorecard.plan.get('margins', {}).get('beta2'))} (slope scale) — all fixed in the locked plan "
-        f"(sha256 {str(scorecard.plan.get('sha256', ''))[:12]}…). {verdict_note()} Adjusted = verdict from p-values "
-        f"adjusted within each claim family ({scorecard.plan.get('multiplicity', '')}); the naive estimate is the "
-        "unadjusted reference. Bias red. = 100·(1 − |D|/|D_naive|) "
+        f"(sha256 {str(scorecard.plan.get('sha256', ''))[:12]}…). {verdict_note()} Verdict (adjusted) = the verdict from p-values "
+        f"adjusted within each claim family ({scorecard.plan.get('multiplicity', '')}), with the raw verdict below it "
+        "when the two differ; the naive estimate is the unadjusted reference. Bias red. = 100·(1 − |D|/|D_naive|) "
         "(Shadish, Clark & Steiner 2008) with its delta-method 95% CI; n.m. = the naive D is not distinguishable "
         "from 0. ATO = overlap-weighted effect, a different estimand from the ATE. "
         f"Heterogeneity (β₂ > 0 or AUTOC > 0, one-sided 5%): {_status_note()}. Sites + = sites "
