@@ -225,3 +225,23 @@ def test_on_the_shipped_demo_the_naive_estimate_is_not_recovered(tmp_path):
     assert naive["difference"]["ci"][0] > 0  # detectably biased upward
     assert card.margin < 0.1 * card.study["outcome_sd"]
     assert "naive" not in card.headline.split(" — ", 1)[1].split(". ", 1)[0]
+
+
+def test_the_demo_summary_says_what_each_scenario_was_built_to_show(tmp_path):
+    """The closing lines of `siteproof demo`: the scenario built to hold has no primary claim `different`, the one
+    built to break (hidden branch effect) has — by the primary claims' adjusted verdicts of each scorecard."""
+    from siteproof.pipeline import PipelineResult, demo_summary
+
+    results = []
+    for design in ("demo", "hidden_branch"):
+        folder = tmp_path / design
+        folder.mkdir()
+        spec = write_demo_data(design, folder)
+        config = BlindConfig(seed=DEMO_SEED, models=("constant",), budgets=(), tree=False, n_boot=20)
+        results.append(run_pipeline(spec, None, config, report=False))
+    assert all(isinstance(r, PipelineResult) for r in results)
+    hold, broken = demo_summary(results)
+    assert hold.startswith("built to hold (demo") and hold.endswith("as expected.") and "NOT" not in hold
+    assert broken.startswith("built to break (hidden_branch") and broken.endswith("caught as expected.")
+    primary = next(r for r in results[1].scorecard.verdicts if r["primary"])
+    assert f"{primary['claim']} {primary['verdict_adjusted']}" in broken

@@ -194,11 +194,11 @@ def _fit_progress(config):
     return progress_bar("fitting models", count_fits(config))
 
 
-def _print_scorecard(scorecard, out_dir: Path) -> None:
+def _print_scorecard(scorecard, out_dir: Path, legend: bool = True) -> None:
     from .core.console import console
     from .reporting.screens import scorecard_renderables
 
-    for item in scorecard_renderables(scorecard):
+    for item in scorecard_renderables(scorecard, legend=legend):
         console.print(item)
     console.print(f"\nscorecard: {out_dir / 'scorecard.json'}")
     if (out_dir / "report.html").exists():
@@ -238,14 +238,20 @@ def demo(
     """Run the whole job on the shipped library-coaching demo and on its hidden-branch-effect variant."""
     from .blind.analysis import BlindConfig
     from .core.console import console
-    from .pipeline import DEMO_SEED, run_demo
+    from .pipeline import DEMO_SEED, demo_summary, run_demo
+    from .reporting.screens import scorecard_legend
 
     config = BlindConfig(seed=DEMO_SEED)
     with _fit_progress(config) as tick:
         results = run_demo(out, config, force=force, progress=tick)
     for result in results:
         console.rule(f"[bold]{result.study.spec.name}")
-        _print_scorecard(result.scorecard, result.out_dir)
+        _print_scorecard(result.scorecard, result.out_dir, legend=False)
+    console.rule("[bold]legend")
+    console.print(scorecard_legend(results[-1].scorecard))
+    console.rule("[bold]summary")
+    for line in demo_summary(results):
+        console.print(line, style="bold")
 
 
 @app.command()

@@ -26,6 +26,12 @@ from .unmask.scoring import Scorecard, run_unmask
 Tick = Callable[[str], None]
 DEMO_SEED = 20261202
 DEMO_DESIGNS = ("demo", "hidden_branch")
+# what each demo scenario is built to show: unconfoundedness given X holds (the primary claim should be
+# recovered) or is broken by a hidden branch effect (the primary claim should be caught as `different`)
+DEMO_PURPOSE = {
+    "demo": ("hold", "unconfoundedness given the covariates holds"),
+    "hidden_branch": ("break", "a hidden branch effect that tracks the rate breaks unconfoundedness"),
+}
 DEMO_MARKER = ".siteproof-demo"
 
 
@@ -139,6 +145,27 @@ def study_toml(spec: StudySpec) -> str:
         lines.append("[rates]")
         lines += [f'"{site}" = {rate}' for site, rate in spec.rates.items()]
     return "\n".join(lines) + "\n"
+
+
+def demo_summary(results: list[PipelineResult]) -> list[str]:
+    """One line per demo scenario: what it was built to show, the primary claims' adjusted verdicts and whether
+    they show it (built to hold: none ``different``; built to break: ``different``, i.e. caught)."""
+    from .core.interpret import DIFFERENT
+
+    lines = []
+    for result in results:
+        name = result.study.spec.name
+        purpose, why = DEMO_PURPOSE.get(name, ("hold", ""))
+        rows = [r for r in result.scorecard.verdicts if r["primary"]]
+        said = ", ".join(f"{r['claim']} {r['verdict_adjusted']}" for r in rows) or "no primary claim scored"
+        caught = any(r["verdict_adjusted"] == DIFFERENT for r in rows)
+        if purpose == "hold":
+            lines.append(f"built to hold ({name}: {why}): {said} — "
+                         + ("NOT as expected." if caught else "as expected."))
+        else:
+            lines.append(f"built to break ({name}: {why}): {said} — "
+                         + ("caught as expected." if caught else "NOT caught."))
+    return lines
 
 
 def run_demo(

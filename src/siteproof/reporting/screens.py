@@ -162,8 +162,15 @@ def _table(title: str, columns: list[tuple[str, str]]) -> Table:
     return t
 
 
-def scorecard_renderables(scorecard: Scorecard) -> list:
-    """The one-screen summary: headline, one line per claim with its verdict, footnotes (not printed here)."""
+def scorecard_legend(scorecard: Scorecard) -> Text:
+    """The footnote that defines every number and abbreviation of the scorecard screens of several runs
+    (printed once, after them)."""
+    return _footnote(scorecard, scorecard.study.get("outcome") or "outcome", one_run=False)
+
+
+def scorecard_renderables(scorecard: Scorecard, legend: bool = True) -> list:
+    """The one-screen summary: headline, one line per claim with its verdict, context lines and (with
+    ``legend``) the footnote that defines every number."""
     s = scorecard.study
     unit = s.get("outcome") or "outcome"
     design = scorecard.design.estimate
@@ -185,7 +192,8 @@ def scorecard_renderables(scorecard: Scorecard) -> list:
     if scorecard.rules:
         out.append(_rules_table(scorecard, unit))
     out.append(_context_text(scorecard))
-    out.append(_footnote(scorecard, unit))
+    if legend:
+        out.append(_footnote(scorecard, unit))
     return out
 
 
@@ -288,13 +296,18 @@ def _context_text(scorecard: Scorecard) -> Text:
     return Text("\n".join(lines))
 
 
-def _footnote(scorecard: Scorecard, unit: str) -> Text:
+def _footnote(scorecard: Scorecard, unit: str, one_run: bool = True) -> Text:
+    """The legend; ``one_run=False`` leaves out the run's own δ and plan hash (a legend shared by several runs,
+    whose headers give them)."""
+    delta = f"δ = {_num(scorecard.margin)} {unit} units" if one_run else "δ (each run's header gives it)"
+    plan = f"the locked plan (sha256 {str(scorecard.plan.get('sha256', ''))[:12]}…)" if one_run else \
+        "each run's locked plan"
     return Text(
         "D = blind − design, on the same units; its 95% CI uses the SE of the paired per-unit scores (AUTOC: "
-        f"shared bootstrap half-samples). δ = {_num(scorecard.margin)} {unit} units is the equivalence margin of "
+        f"shared bootstrap half-samples). {delta} is the equivalence margin of "
         "the average effects; rule gains and rankings use min(δ, half their blind value), β₂ its own margin "
-        f"{_num(scorecard.plan.get('margins', {}).get('beta2'))} (slope scale) — all fixed in the locked plan "
-        f"(sha256 {str(scorecard.plan.get('sha256', ''))[:12]}…). {verdict_note()} Verdict (adjusted) = the verdict from p-values "
+        f"{_num(scorecard.plan.get('margins', {}).get('beta2'))} (slope scale) — all fixed in {plan}. "
+        f"{verdict_note()} Verdict (adjusted) = the verdict from p-values "
         f"adjusted within each claim family ({scorecard.plan.get('multiplicity', '')}), with the raw verdict below it "
         "when the two differ; the naive estimate is the unadjusted reference. Bias red. = 100·(1 − |D|/|D_naive|) "
         "(Shadish, Clark & Steiner 2008) with its delta-method 95% CI; n.m. = the naive D is not distinguishable "
