@@ -48,7 +48,7 @@ CONFIG = dict(folds=3, models=("constant", "t", "dr"), tree=False, n_boot=20)
 
 
 def run(design: str, replicates: int, out: Path, n: int, seed: int, shard: tuple[int, int] = (0, 1),
-        reverse: bool = False) -> None:
+        reverse: bool = False, folds: int = CONFIG["folds"]) -> None:
     """Replicates 0..R−1 not yet in ``out`` (those with r mod K = k for ``shard`` (k, K); from R−1 down with
     ``reverse``, so a second process can work from the other end); one CSV each."""
     out.mkdir(parents=True, exist_ok=True)
@@ -62,7 +62,7 @@ def run(design: str, replicates: int, out: Path, n: int, seed: int, shard: tuple
         study = simulated_study(trial, seed=blind_seed)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", SiteproofWarning)
-            claims = run_blind(study.blind, BlindConfig(seed=blind_seed, **CONFIG))
+            claims = run_blind(study.blind, BlindConfig(seed=blind_seed, **{**CONFIG, "folds": folds}))
             card = run_unmask(study, claims, seed=unmask_seed,
                               site_learner=make_pipeline(StandardScaler(), LogisticRegression(max_iter=500)))
         frame = card.to_frame()
@@ -118,13 +118,14 @@ def main(argv: list[str] | None = None) -> None:
     go.add_argument("--seed", type=int, default=1)
     go.add_argument("--shard", default="0/1", help="k/K: run the replicates r with r mod K = k (parallel runs)")
     go.add_argument("--reverse", action="store_true", help="work from the last replicate down")
+    go.add_argument("--folds", type=int, default=CONFIG["folds"], help="cross-fitting folds (default 3)")
     show = sub.add_parser("summary")
     show.add_argument("folders", type=Path, nargs="+")
     show.add_argument("--multiplicity", default=DEFAULT_MULTIPLICITY, choices=("holm", "bh"))
     args = parser.parse_args(argv)
     if args.command == "run":
         k, shards = (int(v) for v in args.shard.split("/"))
-        run(args.design, args.replicates, args.out, args.n, args.seed, (k, shards), args.reverse)
+        run(args.design, args.replicates, args.out, args.n, args.seed, (k, shards), args.reverse, args.folds)
     else:
         for folder in args.folders:
             summary(folder, args.multiplicity)

@@ -120,31 +120,32 @@ def calibration_figure(bins: Sequence[Interval], bin_means: Sequence[float], sit
     percentile range) against its known rate. A correct ê lies on the dashed identity line in the left panel."""
     fig, axes = new_figure(theme.FIG_WIDTH, 3.9, ncols=2)
     left, right = axes[0]
-    xs = np.asarray(bin_means, dtype=float)
-    for row, x in zip(bins, xs):
-        left.plot([x, x], [row.low, row.high], color=theme.ROLE["design"], lw=1.4)
-    left.plot(xs, [b.estimate for b in bins], "s-", color=theme.ROLE["design"], ms=5.5, lw=1.0,
-              label="mean known rate in the bin")
-    values = np.concatenate([xs, finite_values([b.low for b in bins]), finite_values([b.high for b in bins])])
-    lo, hi = span_unit(values)
-    identity_line(left, lo, hi, "ideal: equal")
-    left.set_xlabel("mean learned ê in the bin (probability)")
-    left.set_ylabel("known assignment rate (probability)")
-    left.set_title("by bin of ê")
-    left.legend(loc="upper left")
+    _calibration_panel(left, np.asarray(bin_means, dtype=float), bins, "design",
+                       dict(fmt="s-", ms=5.5, lw=1.0, label="mean known rate in the bin"), "ideal: equal",
+                       ("mean learned ê in the bin (probability)", "known assignment rate (probability)", "by bin of ê"))
     rates = np.asarray(site_rates, dtype=float)
-    for row, r in zip(sites, rates):
-        right.plot([r, r], [row.low, row.high], color=theme.ROLE["blind"], lw=1.4)
-    right.plot(rates, [s.estimate for s in sites], "o", color=theme.ROLE["blind"], ms=7, label="mean ê of the site")
-    values = np.concatenate([rates, finite_values([s.low for s in sites]), finite_values([s.high for s in sites])])
-    lo, hi = span_unit(values)
-    identity_line(right, lo, hi, "ê equal to the site's rate")
-    right.set_xlabel("known assignment rate of the site (probability)")
-    right.set_ylabel("learned ê, site mean and 10–90 % range")
-    right.set_title("by site")
-    right.legend(loc="upper left")
+    _calibration_panel(right, rates, sites, "blind", dict(fmt="o", ms=7, label="mean ê of the site"),
+                       "ê equal to the site's rate",
+                       ("known assignment rate of the site (probability)", "learned ê, site mean and 10–90 % range",
+                        "by site"))
     _label_sites(right, sites, rates)
     return fig
+
+
+def _calibration_panel(ax: Axes, xs: np.ndarray, rows: Sequence[Interval], role: str, point: dict,
+                       identity: str, titles: tuple[str, str, str]) -> None:
+    """One calibration panel: each row's interval drawn vertically at its x, the points (``point``: the
+    matplotlib format and keywords), the identity line over the data's span and the axis labels and title."""
+    for row, x in zip(rows, xs):
+        ax.plot([x, x], [row.low, row.high], color=theme.ROLE[role], lw=1.4)
+    ax.plot(xs, [r.estimate for r in rows], point["fmt"], color=theme.ROLE[role],
+            **{key: value for key, value in point.items() if key != "fmt"})
+    values = np.concatenate([xs, finite_values([r.low for r in rows]), finite_values([r.high for r in rows])])
+    identity_line(ax, *span_unit(values), identity)
+    ax.set_xlabel(titles[0])
+    ax.set_ylabel(titles[1])
+    ax.set_title(titles[2])
+    ax.legend(loc="upper left")
 
 
 LABELLED_SITES = 12  # up to this many sites every site is named in the calibration panel; beyond, the extremes
