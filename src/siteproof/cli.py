@@ -75,6 +75,7 @@ _DATA_HELP = {
     "id": "Unit id column.",
     "cost": "Per-unit cost of treating.",
     "stratum": "Randomization stratum within site.",
+    "cluster": "Unit of assignment or of repeated measurement (classroom, household, person); clusters must be nested in sites.",
     "rates": "Known assignment probabilities, e.g. A=0.5,B=0.8 (or SITE:STRATUM=P).",
     "margin": "Equivalence margin δ of the ATE family, locked in the blind plan (default 0.1 × pooled within-arm "
               "residual SD of the outcome).",

@@ -4,7 +4,9 @@ Numeric columns are kept with median imputation and a ``<col>:missing`` indicato
 their earliest value; text, boolean and categorical columns are one-hot encoded against their most frequent
 level, with a ``<col>:missing`` indicator; constant feature columns are dropped.  Screens drop covariates
 that copy the outcome or the treatment (each determines the other, or a threshold separates the arms) and
-covariates that copy the site (every value occurs in one site only), and refuse undeclared identifiers and
+covariates that copy the site (every value occurs in one site only) — unless a cluster column is given and
+the covariate is measured at the cluster level (constant within clusters, varying between clusters of one
+site): such a covariate describes the cluster, not the site, and is kept — and refuse undeclared identifiers and
 numbers mixed with stray text.
 """
 
@@ -69,6 +71,19 @@ def _copies_site(values: np.ndarray, numeric: bool, site: np.ndarray) -> bool:
     return bool((pairs.groupby("v")["s"].nunique() == 1).all())
 
 
+def _cluster_level(values: np.ndarray, numeric: bool, clusters: np.ndarray | None, site: np.ndarray) -> bool:
+    """True when the column is constant within every cluster (some with two or more units) but takes two or
+    more values among the clusters of at least one site (missing values ignored): a cluster-level covariate,
+    not a copy of the site.  With one unit per cluster nothing is cluster-level and the site screen applies."""
+    if clusters is None:
+        return False
+    present = _present(values, numeric)
+    pairs = pd.DataFrame({"v": values[present], "c": clusters[present], "s": site[present]})
+    if not (pairs.groupby("c").size() > 1).any() or (pairs.groupby("c")["v"].nunique() > 1).any():
+        return False
+    return bool((pairs.groupby("s")["v"].nunique() > 1).any())
+
+
 def _function_of(values: np.ndarray, numeric: bool, target: np.ndarray, target_levels: int) -> bool:
     """True when the covariate and ``target`` (outcome or treatment, numeric, ``target_levels`` distinct
     values) determine each other in the rows where the covariate is present.
@@ -112,12 +127,19 @@ def _separates_arms(values: np.ndarray, numeric: bool, w: np.ndarray) -> bool:
 
 
 def _copies_design(name: str, values: np.ndarray, numeric: bool, y: tuple[np.ndarray, int], w: np.ndarray,
-                   spec: StudySpec) -> str:
+                   spec: StudySpec, per_cluster: np.ndarray | None = None) -> str:
     """A warning when the covariate copies the outcome (``y`` = values and their number of distinct values)
-    or the treatment ``w`` (it is then dropped), else ""."""
+    or the treatment ``w`` (it is then dropped), else "".
+
+    For a cluster-level covariate ``per_cluster`` indexes one unit of each cluster and the treatment screens
+    run on those rows: in a cluster-randomized trial a value shared by a cluster's units trivially shares its
+    arm, so only a covariate that determines the arm *across clusters* copies the treatment.
+    """
     if _function_of(values, numeric, *y):
         return (f"covariate '{name}' is the outcome '{spec.outcome}' in another form (each determines the other), "
                 "so it would hand the analysis the answer; it was dropped")
+    if per_cluster is not None:
+        values, w = values[per_cluster], w[per_cluster]
     if _function_of(values, numeric, w, 2) or _separates_arms(values, numeric, w):
         return (f"covariate '{name}' determines the treatment '{spec.treatment}' exactly (no unit has the other "
                 "arm at its value), so no comparison is possible within it; it was dropped")
@@ -125,15 +147,20 @@ def _copies_design(name: str, values: np.ndarray, numeric: bool, y: tuple[np.nda
 
 
 def screen_covariates(
-    frame: pd.DataFrame, names: list[str], site: np.ndarray, spec: StudySpec
-) -> tuple[dict[str, tuple[np.ndarray, bool]], list[str]]:
-    """Values of the covariates that survive the screens, and the warnings raised on the way.
+    frame: pd.DataFrame, names: list[str], site: np.ndarray, spec: StudySpec, clusters: np.ndarray | None = None,
+) -> tuple[dict[str, tuple[np.ndarray, bool]], list[str], list[str]]:
+    """Values of the covariates that survive the screens, the warnings raised on the way, and the names of the
+    kept covariates measured at the cluster level.
 
     Dates become days since their earliest value; covariates that copy the outcome or the treatment
-    (:func:`_copies_design`) are dropped; covariates that copy the site are dropped unless kept.
+    (:func:`_copies_design`) are dropped; covariates that copy the site are dropped unless kept, or unless
+    they vary between clusters of a site while constant within each (:func:`_cluster_level`, given
+    ``clusters``, the cluster labels).
     """
     kept: dict[str, tuple[np.ndarray, bool]] = {}
     notes: list[str] = []
+    cluster_level: list[str] = []
+    per_cluster = None if clusters is None else np.unique(pd.factorize(clusters)[0], return_index=True)[1]
     outcome = as_float(frame[spec.outcome])
     y = (outcome, pd.unique(outcome).size)
     arms = text_labels(frame[spec.treatment])
@@ -150,11 +177,14 @@ def screen_covariates(
         if numeric and np.isinf(values).any():
             notes.append(f"covariate '{name}' has infinite values; they are treated as missing")
             values = np.where(np.isinf(values), np.nan, values)
-        copy_note = _copies_design(name, values, numeric, y, w, spec)
+        at_cluster_level = _cluster_level(values, numeric, clusters, site)
+        copy_note = _copies_design(name, values, numeric, y, w, spec, per_cluster if at_cluster_level else None)
         if copy_note:
             notes.append(copy_note)
             continue
-        if _copies_site(values, numeric, site):
+        if at_cluster_level:
+            cluster_level.append(name)
+        elif _copies_site(values, numeric, site):
             if name not in spec.keep_columns:
                 notes.append(
                     f"covariate '{name}' copies the site column '{spec.site}' (each of its values occurs in one "
@@ -167,7 +197,11 @@ def screen_covariates(
         if not _present(values, numeric).any():
             notes.append(f"covariate '{name}' has no values in the usable units; it is ignored")
         kept[name] = (values, numeric)
-    return kept, notes
+    if cluster_level:
+        notes.append(f"covariate(s) {', '.join(repr(n) for n in cluster_level)} are measured at the level of the "
+                     f"cluster '{spec.cluster}' (constant within clusters, varying between clusters of a site); "
+                     "they describe the cluster, not the site, and were kept")
+    return kept, notes, cluster_level
 
 
 def _encode_numeric(name: str, values: np.ndarray) -> tuple[list[np.ndarray], list[str]]:

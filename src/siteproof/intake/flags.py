@@ -47,6 +47,7 @@ class DataFlags:
     id: Optional[str] = None
     cost: Optional[str] = None
     stratum: Optional[str] = None
+    cluster: Optional[str] = None
     rates: Optional[str] = None
     margin: Optional[float] = None
     seed: Optional[int] = None
@@ -102,6 +103,7 @@ def spec_from_flags(flags: DataFlags, out: Optional[Path] = None) -> StudySpec:
     given: dict[str, Any] = {
         "data": flags.data, "outcome": flags.outcome, "treatment": flags.treatment, "site": flags.site,
         "treated_value": flags.treated_value, "id": flags.id, "cost": flags.cost, "stratum": flags.stratum,
+        "cluster": flags.cluster,
         "margin": flags.margin, "seed": flags.seed, "encoding": flags.encoding,
         "covariates": split_list(flags.covariates), "rates": flags.rates,
         "keep_columns": flags.keep_column or None, "drop_columns": flags.drop_column or None,

@@ -31,9 +31,9 @@ def _need_column(frame: pd.DataFrame, name: str, flag: str, what: str) -> None:
 
 
 def _role_columns(spec: StudySpec) -> dict[str, str]:
-    """Column → the role it plays (outcome, treatment, site, id, cost, stratum); one role per column."""
+    """Column → the role it plays (outcome, treatment, site, id, cost, stratum, cluster); one role per column."""
     roles: dict[str, str] = {}
-    for role in ("outcome", "treatment", "site", "id", "cost", "stratum"):
+    for role in ("outcome", "treatment", "site", "id", "cost", "stratum", "cluster"):
         column = getattr(spec, role)
         if column is None:
             continue
@@ -67,7 +67,7 @@ def check_columns(spec: StudySpec, frame: pd.DataFrame) -> list[str]:
     """Every named column exists and plays one role, none holds nested values, and the numeric ones (outcome,
     cost, covariates) hold no magnitudes beyond ±1e100; returns the covariate names."""
     _need_column(frame, spec.site, "--site", "site column")
-    for role in ("outcome", "treatment", "id", "cost", "stratum"):
+    for role in ("outcome", "treatment", "id", "cost", "stratum", "cluster"):
         if getattr(spec, role) is not None:
             _need_column(frame, getattr(spec, role), FLAG_OF[role], f"{role} column")
     for key in ("keep_columns", "drop_columns", "site_derived"):
@@ -188,7 +188,7 @@ def check_sample(y: np.ndarray, w: np.ndarray, spec: StudySpec, n_excluded: dict
 
 
 def design_labels(series: pd.Series, name: str, role: str, origin: np.ndarray) -> np.ndarray:
-    """Site or stratum labels of the usable rows; missing values are an error (the rate would be unknown).
+    """Site, stratum or cluster labels of the usable rows; missing values are an error (the rate would be unknown).
 
     ``origin`` holds the 0-based row numbers of the usable rows in the data (messages count from 1)."""
     labels = text_labels(series)

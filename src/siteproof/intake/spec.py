@@ -47,6 +47,7 @@ class StudySpec:
     id: str | None = None
     cost: str | None = None
     stratum: str | None = None
+    cluster: str | None = None
     rates: dict[str, float] | None = None
     margin: float | None = None
     seed: int = 2026
@@ -87,7 +88,7 @@ SPEC_KEYS = tuple(f.name for f in fields(StudySpec))
 REQUIRED_KEYS = ("data", "outcome", "treatment", "site")
 FLAG_OF = {
     "outcome": "--outcome", "treatment": "--treatment", "site": "--site", "treated_value": "--treated-value",
-    "covariates": "--covariates", "id": "--id", "cost": "--cost", "stratum": "--stratum", "rates": "--rates",
+    "covariates": "--covariates", "id": "--id", "cost": "--cost", "stratum": "--stratum", "cluster": "--cluster", "rates": "--rates",
     "margin": "--margin", "seed": "--seed", "encoding": "--encoding", "keep_columns": "--keep-column",
     "drop_columns": "--drop-column", "site_derived": "--site-derived", "data": "DATA",
 }

@@ -1,7 +1,8 @@
 """Study intake: a pooled multi-site trial plus the roles of its columns → :class:`Study`.
 
 The study description (:mod:`~siteproof.intake.spec`) says which column is the outcome, the treatment, the
-site, and optionally the unit id, the per-unit cost of treating and a randomization stratum within site;
+site, and optionally the unit id, the per-unit cost of treating, a randomization stratum within site and a
+cluster (the unit of assignment or of repeated measurement, nested in sites);
 every other column is a covariate unless listed otherwise.  Intake
 
 * reads the table (:mod:`~siteproof.intake.readers`: CSV, Parquet, Stata, SAS, SPSS, Feather/Arrow, or a
@@ -12,7 +13,8 @@ every other column is a covariate unless listed otherwise.  Intake
   the declared rates (:mod:`~siteproof.intake.rates`).
 
 The result keeps the site away from the blind analysis by construction: :class:`BlindData` has no site
-field and its fingerprint does not depend on the site column.  Every user mistake raises
+field and its fingerprint does not depend on the site column; clusters reach it only as shuffled integer codes
+(which units share a cluster), never as labels.  Every user mistake raises
 ``SiteproofError(what, fix)``; every warning is issued once as a ``SiteproofWarning`` and recorded in
 ``Study.warnings``.
 
@@ -37,6 +39,7 @@ from .roles import (
 )
 from .spec import StudySpec, check_spec, load_spec_toml, parse_column_list, parse_rates
 from .values import numeric_column, text_labels
+from ..core.clusters import ClusterDesign, cluster_codes, cluster_design
 from ..core.errors import warn
 from ..core.results import ResultsMixin
 
@@ -64,6 +67,12 @@ class BlindData(ResultsMixin):
     n_excluded: dict[str, int]
     fingerprint: str
     raw_covariates: pd.DataFrame
+    clusters: np.ndarray | None = None
+
+    @property
+    def n_clusters(self) -> int | None:
+        """Number of clusters, or None when units are not clustered."""
+        return None if self.clusters is None else int(self.clusters.max()) + 1
 
     @property
     def n(self) -> int:
@@ -90,11 +99,13 @@ class BlindData(ResultsMixin):
 
 def fingerprint(
     row_key: np.ndarray, y: np.ndarray, w: np.ndarray, X: np.ndarray, feature_names: Iterable[str],
-    cost: np.ndarray | None = None,
+    cost: np.ndarray | None = None, clusters: np.ndarray | None = None,
 ) -> str:
-    """sha256 of the usable rows as the blind analysis sees them: feature names, row keys, y, w, X, cost.
+    """sha256 of the usable rows as the blind analysis sees them: feature names, row keys, y, w, X, cost and
+    the cluster codes.
 
-    Numbers are hashed as little-endian float64 (w as int8) in row order; the site is not part of it.
+    Numbers are hashed as little-endian float64 (w as int8, cluster codes as int64) in row order; the site is
+    not part of it.
     """
     digest = hashlib.sha256(b"siteproof-blind-v1\0")
     digest.update("\x1f".join(feature_names).encode("utf-8") + b"\0")
@@ -104,6 +115,8 @@ def fingerprint(
     digest.update(np.ascontiguousarray(X, dtype="<f8").tobytes())
     if cost is not None:
         digest.update(b"cost\0" + np.ascontiguousarray(cost, dtype="<f8").tobytes())
+    if clusters is not None:
+        digest.update(b"clusters\0" + np.ascontiguousarray(clusters, dtype="<i8").tobytes())
     return digest.hexdigest()
 
 
@@ -126,6 +139,9 @@ class Study(ResultsMixin):
     cells: pd.DataFrame
     spec: StudySpec
     warnings: tuple[str, ...]
+    cluster: np.ndarray | None = None
+    cluster_design: ClusterDesign | None = None
+    cluster_level: tuple[str, ...] = ()
 
     @property
     def n(self) -> int:
@@ -162,11 +178,13 @@ def load_study(spec: StudySpec, frame: pd.DataFrame | None = None) -> Study:
     origin = np.flatnonzero(keep)
     site = design_labels(rows[spec.site], spec.site, "site", origin)
     stratum = None if spec.stratum is None else design_labels(rows[spec.stratum], spec.stratum, "stratum", origin)
+    cluster, codes, design = cluster_column(rows, spec, site, w, origin)
     cost = cost_column(rows, spec.cost, origin)
-    covariates, screen_notes = screen_covariates(rows, covariate_names, site, spec)
+    covariates, screen_notes, cluster_level = screen_covariates(rows, covariate_names, site, spec, cluster)
     X, feature_names, used = encode_covariates(covariates, y.size)
     known_rate, cells, source, rate_notes = attach_rates(spec, site, stratum, w)
-    notes += screen_notes + (["no covariates remain for the blind analysis"] if not used else [])
+    notes += cluster_notes(spec, design) + screen_notes
+    notes += ["no covariates remain for the blind analysis"] if not used else []
     notes += rate_notes + one_arm_sites(site, w)
     for note in notes:
         warn(note)
@@ -175,7 +193,42 @@ def load_study(spec: StudySpec, frame: pd.DataFrame | None = None) -> Study:
         X=X, feature_names=tuple(feature_names), y=y, w=w, row_key=row_key, cost=cost,
         binary_outcome=bool(np.isin(y, (0.0, 1.0)).all()), outcome=spec.outcome, treatment=spec.treatment,
         treated_value=treated_value, covariates=tuple(used), n_excluded=n_excluded,
-        fingerprint=fingerprint(row_key, y, w, X, feature_names, cost),
-        raw_covariates=rows[used].reset_index(drop=True),
+        fingerprint=fingerprint(row_key, y, w, X, feature_names, cost, codes),
+        raw_covariates=rows[used].reset_index(drop=True), clusters=codes,
     )
-    return Study(blind, site, stratum, known_rate, source, cells, spec, tuple(notes))
+    kept_cluster_level = tuple(name for name in cluster_level if name in used)
+    return Study(blind, site, stratum, known_rate, source, cells, spec, tuple(notes), cluster, design,
+                 kept_cluster_level)
+
+
+def cluster_column(rows: pd.DataFrame, spec: StudySpec, site: np.ndarray, w: np.ndarray, origin: np.ndarray,
+                   ) -> tuple[np.ndarray | None, np.ndarray | None, ClusterDesign | None]:
+    """The cluster labels (nested in sites), the blind view's cluster codes and the assignment pattern.
+
+    The codes 0..G−1 are a permutation of the clusters drawn with the study seed, so neither their order
+    nor their values carry the labels (which may spell the site) into the blind analysis: it sees only
+    which units share a cluster.  Without ``spec.cluster`` all three are None.
+    """
+    if spec.cluster is None:
+        return None, None, None
+    labels = design_labels(rows[spec.cluster], spec.cluster, "cluster", origin)
+    design = cluster_design(w, labels, site)
+    codes, _ = cluster_codes(labels)
+    relabel = np.random.default_rng([spec.seed, 0xC1]).permutation(design.n_clusters)
+    return labels, relabel[codes].astype(np.int64), design
+
+
+def cluster_notes(spec: StudySpec, design: ClusterDesign | None) -> list[str]:
+    """What the cluster column says about the design: cluster-randomized (with clusters per arm per site) or
+    a correlation structure only."""
+    if design is None:
+        return []
+    low, median, high = design.sizes
+    head = (f"{design.n_clusters} clusters in '{spec.cluster}' (sizes {low}–{high}, median {median:g}); "
+            "every standard error, fold split, bootstrap and holdout keeps clusters whole")
+    if design.cluster_randomized:
+        arms = "; ".join(f"{site}: {t} treated / {c} control" for site, (t, c, _) in design.per_site.items())
+        return [f"{head}. Treatment is constant within every cluster: a cluster-randomized design ({arms})"]
+    mixed = sum(m for _, _, m in design.per_site.values())
+    return [f"{head}. Treatment varies within {mixed} cluster(s): clusters are used as a correlation "
+            "structure only (repeated measures or units sharing an environment)"]
