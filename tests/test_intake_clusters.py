@@ -75,14 +75,17 @@ def test_blind_codes_are_shuffled_integers_that_keep_the_grouping():
     assert not np.array_equal(first_seen, np.arange(18))  # not the order of appearance (which follows the sites)
 
 
-def test_clusters_change_the_fingerprint_and_one_unit_per_cluster_keeps_every_covariate():
+def test_clusters_change_the_fingerprint_and_one_unit_per_cluster_is_the_unclustered_study():
     frame = _frame()
     plain = _load(frame.drop(columns="cluster"))
     frame["unit"] = [f"u{i}" for i in range(len(frame))]
     singleton = _load(frame.drop(columns="cluster"), cluster="unit")
     assert singleton.blind.covariates == plain.blind.covariates
-    assert singleton.blind.fingerprint != plain.blind.fingerprint
-    assert np.array_equal(singleton.blind.X, plain.blind.X)
+    assert singleton.blind.fingerprint == plain.blind.fingerprint  # singletons: the unclustered analysis
+    assert singleton.blind.clusters is None and singleton.cluster is None
+    assert any("holds one unit" in note for note in singleton.warnings)
+    clustered = _load(_frame(), cluster="cluster")
+    assert clustered.blind.fingerprint != plain.blind.fingerprint
 
 
 def test_clusters_spanning_sites_and_missing_labels_are_refused():

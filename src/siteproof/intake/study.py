@@ -207,12 +207,16 @@ def cluster_column(rows: pd.DataFrame, spec: StudySpec, site: np.ndarray, w: np.
 
     The codes 0..G−1 are a permutation of the clusters drawn with the study seed, so neither their order
     nor their values carry the labels (which may spell the site) into the blind analysis: it sees only
-    which units share a cluster.  Without ``spec.cluster`` all three are None.
+    which units share a cluster.  Without ``spec.cluster`` all three are None; when every cluster holds one
+    unit the labels and codes are None too (singletons carry no correlation, so the analysis is the
+    unclustered one, figure for figure) and only the design is kept, for the note.
     """
     if spec.cluster is None:
         return None, None, None
     labels = design_labels(rows[spec.cluster], spec.cluster, "cluster", origin)
     design = cluster_design(w, labels, site)
+    if design.sizes[2] == 1:
+        return None, None, design
     codes, _ = cluster_codes(labels)
     relabel = np.random.default_rng([spec.seed, 0xC1]).permutation(design.n_clusters)
     return labels, relabel[codes].astype(np.int64), design
@@ -224,6 +228,9 @@ def cluster_notes(spec: StudySpec, design: ClusterDesign | None) -> list[str]:
     if design is None:
         return []
     low, median, high = design.sizes
+    if high == 1:
+        return [f"every cluster in '{spec.cluster}' holds one unit, so clusters change nothing: the analysis is "
+                "the unclustered one"]
     head = (f"{design.n_clusters} clusters in '{spec.cluster}' (sizes {low}–{high}, median {median:g}); "
             "every standard error, fold split, bootstrap and holdout keeps clusters whole")
     if design.cluster_randomized:
