@@ -419,13 +419,14 @@ def study(
     workers: Annotated[int, typer.Option("--workers", help="Local processes or LocalCluster workers.")] = 1,
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", help="'local' (a dask.distributed LocalCluster) or a scheduler address tcp://HOST:PORT; default: local processes.")] = None,
     seed: Annotated[int, typer.Option("--seed", help="Study seed, 0 ≤ seed < 2³² (same seed, same replicates.csv).", callback=_seed)] = 0,
+    ignore_clusters: Annotated[bool, typer.Option("--ignore-clusters", help="Analyse a clustered design as if its clusters were unknown (to measure what declaring them prevents).")] = False,
 ) -> None:
     """Monte Carlo design study: simulate, run blind + unmask, record bias, coverage and verdicts; resumable."""
     from .core.console import console, progress_bar
     from .simulation.montecarlo import run_study
 
     result = run_study(design, replicates, out, n=n, workers=workers, scheduler=scheduler, seed=seed,
-                       progress=progress_bar)
+                       progress=progress_bar, clusters=not ignore_clusters)
     console.print(
         f"design '{result.design}', n = {result.n}, seed {result.seed}: {result.replicates} replicates "
         f"({result.ran} run now, {result.reused} kept from an earlier run"

@@ -103,7 +103,9 @@ class ReplicateTask:
     """Everything one replicate needs (picklable, so it can travel to a process or a Dask worker).
 
     ``config`` is the blind configuration including its learners (its ``seed`` is replaced by the
-    replicate's own); ``site_learner`` is unmask's site classifier for propensity recovery (None: default).
+    replicate's own); ``site_learner`` is unmask's site classifier for propensity recovery (None: default);
+    ``clusters``: analyse a clustered scenario with its cluster column (False: as if the clusters were unknown,
+    to show what ignoring them costs).
     """
 
     design: Scenario
@@ -113,6 +115,7 @@ class ReplicateTask:
     truth: float
     config: BlindConfig
     site_learner: Any = None
+    clusters: bool = True
 
 
 @dataclass(frozen=True)
@@ -134,13 +137,15 @@ def replicate_seeds(seed: int, replicates: int) -> list[tuple[int, int, int]]:
     return [tuple(int(v) for v in child.generate_state(3, dtype=np.uint32)) for child in children]
 
 
-def simulated_study(trial: SimulatedTrial, seed: int) -> Study:
-    """Load a simulated trial as a study: declared rates known, cost column left out of the analysis."""
+def simulated_study(trial: SimulatedTrial, seed: int, clusters: bool = True) -> Study:
+    """Load a simulated trial as a study: declared rates known, cost column left out of the analysis, and the
+    scenario's cluster column (if any) declared unless ``clusters`` is False."""
     roles = trial.design.roles
+    clustering = trial.design.clusters
     spec = StudySpec(
         data=f"<simulated {trial.design.name}>", outcome=roles.outcome, treatment=roles.treatment,
         site=roles.site, id=roles.id, covariates=list(roles.covariates), rates=dict(trial.rates), seed=seed,
-        name=trial.design.name,
+        name=trial.design.name, cluster=clustering.column if clustering is not None and clusters else None,
     )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SiteproofWarning)
@@ -152,7 +157,7 @@ def run_replicate(task: ReplicateTask) -> ReplicateResult:
     start = time.perf_counter()
     sim_seed, blind_seed, unmask_seed = task.seeds
     trial = simulate(task.design, n=task.n, seed=sim_seed)
-    study = simulated_study(trial, seed=blind_seed)
+    study = simulated_study(trial, seed=blind_seed, clusters=task.clusters)
     claims = run_blind(study.blind, dataclasses.replace(task.config, seed=blind_seed))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SiteproofWarning)
@@ -264,12 +269,17 @@ def design_fingerprint(design: Scenario) -> str:
     return hashlib.sha256(("Design" + text.removeprefix("Scenario")).encode("utf-8")).hexdigest()
 
 
-def study_settings(design: Scenario, n: int, seed: int, config: BlindConfig) -> dict[str, Any]:
-    """The settings a study folder is bound to (study.json); a rerun must match them to resume."""
+def study_settings(design: Scenario, n: int, seed: int, config: BlindConfig, clusters: bool = True
+                   ) -> dict[str, Any]:
+    """The settings a study folder is bound to (study.json); a rerun must match them to resume.  Whether a
+    clustered scenario is analysed with its clusters is recorded only for scenarios that have clusters."""
     blind = config.to_dict()
     blind.pop("seed")
-    return {"design": design.name, "design_fingerprint": design_fingerprint(design), "n": int(n),
-            "seed": int(seed), "blind": blind}
+    settings = {"design": design.name, "design_fingerprint": design_fingerprint(design), "n": int(n),
+                "seed": int(seed), "blind": blind}
+    if design.clusters is not None:
+        settings["clusters"] = bool(clusters)
+    return settings
 
 
 def _open_folder(out: Path, settings: dict[str, Any]) -> dict[str, Any]:
@@ -536,6 +546,7 @@ def run_study(
     site_learner: Any = None,
     progress: ProgressFactory | None = None,
     report: bool = True,
+    clusters: bool = True,
 ) -> StudyResult:
     """Run (or resume) a Monte Carlo design study of ``replicates`` replicates into the folder ``out``.
 
@@ -545,7 +556,8 @@ def run_study(
     ``seed``: the study seed (same seed ⇒ identical replicates.csv); ``config``: the blind settings and
     learners (default ``BlindConfig()``; tests pass fast learners); ``site_learner``: unmask's site classifier;
     ``progress``: a factory like :func:`siteproof.core.console.progress_bar` — called as
-    ``progress("replicates", total)`` and used as a context manager yielding ``tick(label)``.
+    ``progress("replicates", total)`` and used as a context manager yielding ``tick(label)``; ``clusters``:
+    analyse a clustered scenario with its cluster column (False: ignore it, to measure what that costs).
     """
     _check_arguments(replicates, n, workers, seed, scheduler)
     design = design if isinstance(design, Scenario) else load_design(design)
@@ -553,7 +565,7 @@ def run_study(
     config = config or BlindConfig()
     config.validate()
     out = Path(out)
-    settings = study_settings(design, n, seed, config)
+    settings = study_settings(design, n, seed, config, clusters)
     stored = _open_folder(out, settings)
     with _dask_client(workers, scheduler) as client:
         truth = stored.get("population_ate")
@@ -569,7 +581,7 @@ def run_study(
         seeds = replicate_seeds(seed, replicates)
         done, bad = verify_parts(out, seeds)
         discard_parts(out, bad)
-        tasks = [ReplicateTask(design, n, r, seeds[r], truth, config, site_learner)
+        tasks = [ReplicateTask(design, n, r, seeds[r], truth, config, site_learner, clusters)
                  for r in range(replicates) if r not in done]
         start = time.perf_counter()
         with (progress or _quiet)("replicates", len(tasks)) as tick, \
