@@ -20,6 +20,13 @@ The Neyman variance equals the square of the HC2 standard error of the OLS coeff
 (Samii & Aronow 2012; Imbens & Kolesár 2016).  With a known assignment rate e the site table also reports
 the Horvitz–Thompson estimate (Horvitz & Thompson 1952), the mean of Γ*_i = W_i Y_i / e_i −
 (1 − W_i) Y_i / (1 − e_i), and its Hájek (ratio) version.
+
+Clustered units (``clusters``, one label per unit, nested in sites): each cell's variance V_c is the CR2
+cluster-robust variance of its difference in means with Satterthwaite degrees of freedom ν_c (Bell &
+McCaffrey 2002; Pustejovsky & Tipton 2018; ``core.clusters.cr2_difference_in_means``), the per-site CI is
+τ̂ ± t_{ν, 0.975}·SE, and the HT/Hájek SEs use the cluster sums of their per-unit scores (Liang & Zeger 1986).
+A site with several cells combines the cells' df by Welch–Satterthwaite, ν = (Σ w_c²V_c)² / Σ (w_c²V_c)²/ν_c.
+Without ``clusters`` every figure is the unit-level one above.
 """
 
 from __future__ import annotations
@@ -33,6 +40,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ..core.clusters import cr2_difference_in_means
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate, mean_and_se, normal_ci
 from ..core.scores import ipw_scores
@@ -43,6 +51,7 @@ SITE_TABLE_COLUMNS = (
     "site", "n", "n_treated", "n_control", "n_included", "rate_declared", "rate_realized", "binom_p",
     "difference_in_means", "se", "ci_low", "ci_high", "ht", "ht_se", "hajek", "hajek_se", "included",
 )
+CLUSTER_COLUMNS = ("n_clusters", "clusters_treated", "clusters_control", "df")
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -210,22 +219,56 @@ def _site_dim(cells: list[_Cell]) -> tuple[float, float, int]:
     return est, var, n_inc
 
 
-def _hajek(y: np.ndarray, w: np.ndarray, e: np.ndarray) -> tuple[float, float]:
+def _cell_cr2(y: np.ndarray, w: np.ndarray, clusters: np.ndarray, cell: _Cell) -> tuple[float, float]:
+    """CR2 variance and Satterthwaite df of one cell's DiM (Bell & McCaffrey 2002); NaN when CR2 is undefined
+    (an arm held by a single cluster)."""
+    try:
+        fit = cr2_difference_in_means(y[cell.index], w[cell.index], clusters[cell.index])
+    except SiteproofError:
+        return math.nan, math.nan
+    return fit.se ** 2, fit.df
+
+
+def _site_dim_clustered(
+    y: np.ndarray, w: np.ndarray, clusters: np.ndarray, cells: list[_Cell]
+) -> tuple[float, float, float, int]:
+    """Like :func:`_site_dim` with each cell's CR2 variance, plus the Welch–Satterthwaite combined df
+    ν = (Σ w_c²V_c)² / Σ (w_c²V_c)²/ν_c (one cell: its own ν)."""
+    est, _, n_inc = _site_dim(cells)
+    if not n_inc:
+        return math.nan, math.nan, math.nan, 0
+    parts = [((c.arms.n / n_inc) ** 2, *_cell_cr2(y, w, clusters, c)) for c in cells if c.arms.usable]
+    var = sum(wt * v for wt, v, _ in parts)
+    denominator = sum((wt * v) ** 2 / df for wt, v, df in parts)
+    df = var ** 2 / denominator if denominator > 0 else math.nan
+    return est, var, df, n_inc
+
+
+def _cluster_counts(w: np.ndarray, clusters: np.ndarray) -> dict[str, int]:
+    """Clusters in all, and those with a treated / a control unit (a mixed cluster counts in both)."""
+    labels = pd.Series(clusters)
+    return {"n_clusters": int(labels.nunique()), "clusters_treated": int(labels[w == 1].nunique()),
+            "clusters_control": int(labels[w == 0].nunique())}
+
+
+def _hajek(y: np.ndarray, w: np.ndarray, e: np.ndarray, clusters: Any = None) -> tuple[float, float]:
     """Hájek estimate Σ(WY/e)/Σ(W/e) − Σ((1−W)Y/(1−e))/Σ((1−W)/(1−e)) and SE sd(ψ)/√n of its linearization
     ψ_i = (W/e)(Y − μ̂₁)/mean(W/e) − ((1−W)/(1−e))(Y − μ̂₀)/mean((1−W)/(1−e)) + τ̂ (mean(ψ) = τ̂)."""
     a1, a0 = w / e, (1 - w) / (1 - e)
     mu1, mu0 = (a1 * y).sum() / a1.sum(), (a0 * y).sum() / a0.sum()
     psi = a1 * (y - mu1) / a1.mean() - a0 * (y - mu0) / a0.mean() + (mu1 - mu0)
-    return mean_and_se(psi)
+    return mean_and_se(psi, clusters)
 
 
-def _weighted_estimates(y: np.ndarray, w: np.ndarray, e: np.ndarray | None) -> dict[str, float]:
-    """Horvitz–Thompson and Hájek estimates of one site with known rates (NaN if not computable)."""
+def _weighted_estimates(y: np.ndarray, w: np.ndarray, e: np.ndarray | None, clusters: Any = None
+                        ) -> dict[str, float]:
+    """Horvitz–Thompson and Hájek estimates of one site with known rates (NaN if not computable); with
+    ``clusters`` their SEs are the cluster-sum SEs of the per-unit scores (Liang & Zeger 1986)."""
     nan = {"ht": math.nan, "ht_se": math.nan, "hajek": math.nan, "hajek_se": math.nan}
     if e is None or not w.size or not np.all((e > 0) & (e < 1)) or w.min() == w.max():
         return nan
-    ht, ht_se = mean_and_se(ipw_scores(y, w, e))
-    hajek, hajek_se = _hajek(y, w.astype(float), e)
+    ht, ht_se = mean_and_se(ipw_scores(y, w, e), clusters)
+    hajek, hajek_se = _hajek(y, w.astype(float), e, clusters)
     return {"ht": ht, "ht_se": ht_se, "hajek": hajek, "hajek_se": hajek_se}
 
 
@@ -249,6 +292,7 @@ def _declared_columns(
 
 def site_table(
     y: Any, w: Any, site: Any, known_rate: Any = None, declared: Any = None, stratum: Any = None,
+    clusters: Any = None,
 ) -> pd.DataFrame:
     """Per-site design table: sizes, declared vs realized rate, DiM with Neyman SE and 95% CI, HT and Hájek.
 
@@ -259,9 +303,14 @@ def site_table(
     binomials, :func:`count_test`).  A site is ``included`` when at least one of its cells has ≥ 2 units in
     each arm; HT/Hájek (with the known rate, SE from the per-unit scores) are reported for those sites and
     use the same units as the difference in means (those of the included cells, ``n_included`` of them).
+
+    With ``clusters`` (one label per unit) the SE is CR2, the CI uses the t quantile at the Satterthwaite df
+    (column ``df``), HT/Hájek SEs are cluster-robust, and the columns ``n_clusters``, ``clusters_treated``,
+    ``clusters_control`` count the site's clusters per arm.  Without it the table is the unit-level one.
     """
     y, w = _as_arrays(y, w)
     site = np.asarray(site).astype(str).astype(object)
+    cl = None if clusters is None else np.asarray(clusters, dtype=object)
     strata = None if stratum is None else np.asarray(stratum).astype(str).astype(object)
     e = None if known_rate is None else np.asarray(known_rate, dtype=float)
     dec = None if declared is None else np.asarray(declared, dtype=float)
@@ -271,19 +320,36 @@ def site_table(
         mine = [c for c in cells if c.site == label]
         index = np.concatenate([c.index for c in mine])
         arms = _Arms.of(y[index], w[index])
-        est, var, n_inc = _site_dim(mine)
-        se = math.sqrt(var) if np.isfinite(var) else math.nan
-        low, high = normal_ci(est, se) if np.isfinite(se) else (math.nan, math.nan)
+        extra: dict[str, Any] = {}
+        if cl is None:
+            est, var, n_inc = _site_dim(mine)
+            se = math.sqrt(var) if np.isfinite(var) else math.nan
+            low, high = normal_ci(est, se) if np.isfinite(se) else (math.nan, math.nan)
+        else:
+            est, var, df, n_inc = _site_dim_clustered(y, w, cl, mine)
+            se = math.sqrt(var) if np.isfinite(var) else math.nan
+            low, high = _t_ci(est, se, df)
+            extra = {**_cluster_counts(w[index], cl[index]), "df": df}
         rate_declared, binom_p = _declared_columns(w, index, mine, dec)
         used = _included_index(mine)
-        weighted = _weighted_estimates(y[used], w[used], None if e is None else e[used])
+        weighted = _weighted_estimates(y[used], w[used], None if e is None else e[used],
+                                       None if cl is None else cl[used])
         rows.append({
             "site": label, "n": arms.n, "n_treated": arms.n1, "n_control": arms.n0, "n_included": n_inc,
             "rate_declared": rate_declared, "rate_realized": arms.n1 / arms.n, "binom_p": binom_p,
             "difference_in_means": est, "se": se, "ci_low": low, "ci_high": high, **weighted,
-            "included": bool(n_inc),
+            "included": bool(n_inc), **extra,
         })
-    return pd.DataFrame(rows, columns=list(SITE_TABLE_COLUMNS))
+    columns = list(SITE_TABLE_COLUMNS) + ([] if cl is None else list(CLUSTER_COLUMNS))
+    return pd.DataFrame(rows, columns=columns)
+
+
+def _t_ci(est: float, se: float, df: float, level: float = 0.95) -> tuple[float, float]:
+    """est ± t_{df, (1+level)/2}·se (NaN when se or df is not finite)."""
+    if not (np.isfinite(se) and np.isfinite(df) and df > 0):
+        return math.nan, math.nan
+    half = float(stats.t.ppf(0.5 + level / 2.0, df)) * se
+    return est - half, est + half
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -313,11 +379,14 @@ class DesignATE:
                 "excluded_sites": list(self.excluded_sites)}
 
 
-def design_ate(y: Any, w: Any, site: Any, stratum: Any = None) -> DesignATE:
+def design_ate(y: Any, w: Any, site: Any, stratum: Any = None, clusters: Any = None) -> DesignATE:
     """τ̂ = Σ_c (n_c/n)·DiM_c over cells with ≥ 2 units per arm, SE = √(Σ_c (n_c/n)²·V_c) (Neyman 1923).
 
     Cells are sites, or site × stratum with a stratum (then each site's estimate is the cell-size-weighted
-    DiM).  n counts the included units only.  Raises SiteproofError when no cell qualifies.
+    DiM).  n counts the included units only.  With ``clusters`` V_c is the cell's CR2 variance (Bell &
+    McCaffrey 2002); a cell whose CR2 is undefined (an arm in one cluster) falls back to the cluster-sum
+    variance of its per-unit scores, which is then, like the unit one, only approximate.  Raises
+    SiteproofError when no cell qualifies.
     """
     y, w = _as_arrays(y, w)
     site = np.asarray(site).astype(str).astype(object)
@@ -334,12 +403,24 @@ def design_ate(y: Any, w: Any, site: Any, stratum: Any = None) -> DesignATE:
     scores = np.empty(y.size)
     n = sum(c.arms.n for c in used)
     est = sum(c.arms.n / n * c.arms.dim for c in used)
-    var = sum((c.arms.n / n) ** 2 * c.arms.neyman_var for c in used)
     for c in used:
         included[c.index] = True
         scores[c.index] = _dim_scores(y[c.index], w[c.index], c.arms)
+    if clusters is None:
+        var = sum((c.arms.n / n) ** 2 * c.arms.neyman_var for c in used)
+    else:
+        cl = np.asarray(clusters, dtype=object)
+        var = sum((c.arms.n / n) ** 2 * _cell_variance(y, w, cl, c, scores) for c in used)
     note = ""
     if excluded:
         note = f"excludes {', '.join(excluded)} (fewer than {MIN_PER_ARM} units in an arm)"
     estimate = Estimate.from_value("design", est, math.sqrt(var), scores=scores[included], note=note)
-    return DesignATE(estimate, included, excluded, site_table(y, w, site, stratum=strata))
+    return DesignATE(estimate, included, excluded, site_table(y, w, site, stratum=strata, clusters=clusters))
+
+
+def _cell_variance(y: np.ndarray, w: np.ndarray, clusters: np.ndarray, cell: _Cell, scores: np.ndarray) -> float:
+    """The cell's CR2 variance, or (CR2 undefined) the squared cluster-sum SE of its DiM scores."""
+    var, _ = _cell_cr2(y, w, clusters, cell)
+    if np.isfinite(var):
+        return var
+    return mean_and_se(scores[cell.index], clusters[cell.index])[1] ** 2

@@ -105,6 +105,7 @@ def within_site_balance(
     stratum: Any = None,
     permutations: int = 0,
     seed: int = 0,
+    clusters: Any = None,
 ) -> BalanceCheck:
     """Test every covariate column of ``X`` for a within-site difference in arm means (module docstring).
 
@@ -114,7 +115,19 @@ def within_site_balance(
     ``permutations`` = B > 0 each T_j is referred to its randomization distribution instead of χ²: W is
     permuted within every cell B times (seeded by ``seed``) and p_j = (1 + #{T*_j ≥ T_j})/(1 + B), exact
     for any cell size (Phipson & Smyth 2010).
+
+    ``clusters`` (one label per unit) is for cluster-randomized designs: there the unit of randomization is
+    the cluster, so the check compares *cluster means*.  Every cluster becomes one row (its covariate means,
+    its arm, its site and stratum) and the same randomization z, χ² and omnibus are computed over the clusters
+    of each cell, which is the exact randomization reasoning above applied to the units actually assigned
+    (Hayes & Moulton 2017, ch. 9, comparing cluster-level summaries; Imbens & Rubin 2015, ch. 6).  Unit-level
+    z would treat m correlated units as m independent draws and flag cluster-level covariates spuriously.
+    Pass ``clusters`` only when whole clusters were assigned; with treatment varying within clusters units
+    were randomized individually and the unit-level check is the right one.
     """
+    if clusters is not None:
+        X_c, w_c, site_c, stratum_c = _cluster_rows(X, w, site, stratum, clusters)
+        return within_site_balance(X_c, names, w_c, site_c, alpha, method, stratum_c, permutations, seed)
     alpha_level(alpha)
     check_multiplicity(method)
     w = unit_vector("the treatment", w)
@@ -138,6 +151,24 @@ def within_site_balance(
     reference = f"permutation ({permutations} draws, seed {seed})" if permutations else "chi-square"
     return BalanceCheck(tuple(rows), tuple(omnibus), tuple(skipped + dropped), frame, float(alpha), method,
                         reference)
+
+
+def _cluster_rows(X: Any, w: Any, site: Any, stratum: Any, clusters: Any
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+    """One row per cluster: covariate means, arm, site and stratum (the first unit's; a cluster lies in one
+    site).  A cluster with both arms cannot be a unit of assignment and is refused."""
+    w = unit_vector("the treatment", w)
+    X = finite_matrix("the covariate matrix", X, w.size)
+    codes, labels = pd.factorize(np.asarray(clusters, dtype=object), sort=False)
+    frame = pd.DataFrame(X).groupby(codes, sort=True).mean()
+    arm = pd.Series(w).groupby(codes, sort=True)
+    if np.any(arm.min().to_numpy() != arm.max().to_numpy()):
+        raise SiteproofError("a cluster holds both arms, so the clusters are not the units of assignment",
+                             "check the cluster-level balance only for cluster-randomized designs")
+    first = pd.Series(np.arange(w.size)).groupby(codes, sort=True).first().to_numpy()
+    site_c = np.asarray(site).astype(str)[first]
+    stratum_c = None if stratum is None else np.asarray(stratum).astype(str)[first]
+    return frame.to_numpy(dtype=float), arm.first().to_numpy(dtype=float), site_c, stratum_c
 
 
 def randomization_z(x: np.ndarray, w: np.ndarray) -> np.ndarray:

@@ -31,11 +31,13 @@ from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
+import pandas as pd
 from scipy import stats
 
 from ..core.checks import alpha_level, at_least, finite_vector, same_length, standard_error
 from ..core.errors import SiteproofError
-from ..core.estimates import Estimate, normal_ci
+from ..blind.evaluation import quantile_groups
+from ..core.estimates import Estimate, mean_and_se, normal_ci
 from ..core.interpret import DIFFERENT, EQUIVALENT, INDETERMINATE, TRIVIALLY_DIFFERENT
 
 
@@ -83,15 +85,20 @@ class Comparison:
 
 
 def paired_difference(
-    scores_blind: Sequence[float] | np.ndarray, scores_design: Sequence[float] | np.ndarray
+    scores_blind: Sequence[float] | np.ndarray, scores_design: Sequence[float] | np.ndarray,
+    clusters: Any = None,
 ) -> Estimate:
-    """D = mean(Γ_b − Γ_d), SE = sd(Γ_b − Γ_d)/√n (n − 1 divisor), 95% Wald CI; scores are Γ_b − Γ_d."""
+    """D = mean(Γ_b − Γ_d), SE = sd(Γ_b − Γ_d)/√n (n − 1 divisor), 95% Wald CI; scores are Γ_b − Γ_d.
+
+    With ``clusters`` (one label per unit) SE = √(G/(G − 1)·Σ_g (Σ_{i∈g} (d_i − d̄))²)/n, the cluster sums of
+    the paired differences d_i = Γ_b,i − Γ_d,i (Liang & Zeger 1986; ``core.clusters.cluster_mean_se``).
+    """
     blind = _score_array(scores_blind, "blind")
     design = _score_array(scores_design, "design")
     same_length("blind scores", blind, "design scores", design,
                 "pass per-unit scores of the same units, in the same order, for both estimates")
     at_least("a paired difference", blind, 2, "score more units")
-    return Estimate.from_scores("blind − design", blind - design, estimand="difference")
+    return Estimate.from_scores("blind − design", blind - design, estimand="difference", clusters=clusters)
 
 
 def compare(blind: float, design: float, se_difference: float, margin: float, alpha: float = 0.05) -> Comparison:
@@ -121,10 +128,12 @@ def compare_scores(
     scores_design: Sequence[float] | np.ndarray,
     margin: float,
     alpha: float = 0.05,
+    clusters: Any = None,
 ) -> Comparison:
-    """Score a blind estimate against the design-based one from their per-unit scores on the same units."""
+    """Score a blind estimate against the design-based one from their per-unit scores on the same units
+    (SE of D from cluster sums of the paired differences when ``clusters`` is given)."""
     _check_margin_alpha(margin, alpha)
-    paired = paired_difference(scores_blind, scores_design)
+    paired = paired_difference(scores_blind, scores_design, clusters)
     blind = float(np.mean(np.asarray(scores_blind, dtype=float)))
     design = float(np.mean(np.asarray(scores_design, dtype=float)))
     estimate = _difference_estimate(paired.estimate, paired.se, alpha, paired.scores)
@@ -250,3 +259,35 @@ def _check_margin_alpha(margin: float, alpha: float) -> None:
             "set --margin to the smallest difference that matters (default: 0.1 × residual SD of the outcome)",
         )
     alpha_level(alpha, upper=0.5)
+
+
+def group_contrast_se(d: np.ndarray, high: np.ndarray, low: np.ndarray | None, clusters: np.ndarray) -> float:
+    """Cluster-robust SE of mean_H(d) − mean_L(d) (or of mean_H(d) alone when ``low`` is None).
+
+    V = V_H + V_L − 2·C with V_a = cluster_mean_se(d over a)² (Liang & Zeger 1986) and, because a cluster may
+    have units in both groups, C = G/(G − 1)·Σ_g T_gH·T_gL/(n_H·n_L), T_ga = Σ_{i∈g∩a} (d_i − d̄_a), G the
+    clusters with units in both groups (C = 0 when none do).  With one unit per cluster V is the unit formula
+    sd²_H/n_H + sd²_L/n_L of ``evaluation.gates`` exactly.
+    """
+    if high.sum() < 2 or (low is not None and low.sum() < 2):
+        return float("nan")
+    var_h = mean_and_se(d[high], clusters[high])[1] ** 2
+    if low is None:
+        return float(np.sqrt(var_h))
+    var_l = mean_and_se(d[low], clusters[low])[1] ** 2
+    t_h = pd.Series(d[high] - d[high].mean()).groupby(clusters[high]).sum()
+    t_l = pd.Series(d[low] - d[low].mean()).groupby(clusters[low]).sum()
+    shared = t_h.index.intersection(t_l.index)
+    g = shared.size
+    cov = 0.0 if g < 2 else g / (g - 1) * float(np.sum(t_h[shared] * t_l[shared])) / (high.sum() * low.sum())
+    return float(np.sqrt(max(var_h + var_l - 2.0 * cov, 0.0)))
+
+
+def clustered_gates_ses(tau: np.ndarray, d: np.ndarray, k: int, clusters: np.ndarray
+                         ) -> tuple[float, list[float], float]:
+    """Cluster-robust SEs of D for the median split, each GATES group and top − bottom (same groups as
+    ``evaluation.gates``: ``quantile_groups`` of τ̂)."""
+    ids, halves = quantile_groups(tau, k), quantile_groups(tau, 2)
+    groups = [group_contrast_se(d, ids == g, None, clusters) for g in range(k)]
+    return (group_contrast_se(d, halves == 1, halves == 0, clusters), groups,
+            group_contrast_se(d, ids == k - 1, ids == 0, clusters))

@@ -301,6 +301,14 @@ class Scorecard(_ScorecardView):
         """The ATE-family margin δ (outcome units); every claim's own margin is in :attr:`verdicts`."""
         return float(self.study["margin"])
 
+    @property
+    def clustering(self) -> dict[str, Any]:
+        """How the scoring treated clusters, from ``study["clustering"]`` in scorecard.json: ``clustered``,
+        ``n_clusters`` (among the scored units), ``cluster_randomized``.  A record without the field (an
+        unclustered study, or one scored before clusters were supported) reads as unclustered."""
+        return dict(self.study.get("clustering") or {"clustered": False, "n_clusters": None,
+                                                     "cluster_randomized": False})
+
     def to_dict(self) -> dict[str, Any]:
         """The scorecard.json content (schema ``siteproof/scorecard`` version 2)."""
         return {

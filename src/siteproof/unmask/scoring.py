@@ -36,6 +36,7 @@ from ..blind.plan import cate_claim, check_plan, rule_claim
 from .correspondence import (
     Comparison,
     compare,
+    clustered_gates_ses,
     compare_scores,
     paired_difference,
     percent_bias_reduction_ci,
@@ -43,7 +44,7 @@ from .correspondence import (
 )
 from ..intake.sitetrials import DesignATE, design_ate, naive_ate, site_table
 from ..core.errors import SiteproofError
-from ..core.estimates import Estimate
+from ..core.estimates import Estimate, mean_and_se
 from ..core.interpret import HETEROGENEITY_ALPHA, heterogeneity_status
 from .lockedplan import UsedPlan, use_plan
 from .balance import within_site_balance
@@ -127,6 +128,7 @@ class _Units:
     mu1: np.ndarray
     m_hat: np.ndarray
     sidecar: pd.DataFrame
+    clusters: np.ndarray | None = None
 
     @property
     def n(self) -> int:
@@ -171,6 +173,7 @@ def _included_units(study: Study, units: pd.DataFrame, included: np.ndarray) -> 
         mu1=side["mu1"].to_numpy(dtype=float),
         m_hat=side["m_hat"].to_numpy(dtype=float),
         sidecar=side,
+        clusters=None if study.cluster is None else np.asarray(study.cluster, dtype=object)[included],
     )
 
 
@@ -205,18 +208,19 @@ def _ate_comparisons(claims: dict[str, Any], u: _Units, truth: DesignATE, plan: 
         scores = u.blind_scores(name)
         if name in PAIRED_SCORES:
             scores = PAIRED_SCORES[name](u.y, u.w, u.e_hat, u.mu0, u.mu1)
-        comp = compare_scores(scores, design_psi, delta, alpha)
+        comp = compare_scores(scores, design_psi, delta, alpha, u.clusters)
         pbr = None if naive_d is None or name == "naive" else percent_bias_reduction_ci(scores - design_psi, naive_d)
         same, note, estimand = None, "", claim.get("estimand", "ATE")
         if name == CROSS_ESTIMAND:
-            same = compare_scores(scores, overlap_design_scores(u.e_hat, u.oracle_scores()), delta, alpha)
+            same = compare_scores(scores, overlap_design_scores(u.e_hat, u.oracle_scores()), delta, alpha, u.clusters)
             note = (
                 "targets the overlap-weighted effect (ATO), a different estimand: its verdict against the pooled "
                 "ATE mixes estimand and bias; 'same_estimand' compares it with the design-based ATO"
             )
         out.append(AteComparison(
             estimator=name, estimand=estimand, claimed=_claim_summary(claim),
-            blind=Estimate.from_scores(name, u.blind_scores(name), estimand=estimand), design=truth.estimate,
+            blind=Estimate.from_scores(name, u.blind_scores(name), estimand=estimand, clusters=u.clusters),
+            design=truth.estimate,
             comparison=comp,
             percent_bias_reduction=pbr, note=note, same_estimand=same,
         ))
@@ -227,23 +231,28 @@ def _ate_comparisons(claims: dict[str, Any], u: _Units, truth: DesignATE, plan: 
 # heterogeneity claims
 # --------------------------------------------------------------------------------------------------------
 def _gates_comparisons(
-    tau: np.ndarray, blind: np.ndarray, design: np.ndarray, k: int, model: str, plan: UsedPlan
+    tau: np.ndarray, blind: np.ndarray, design: np.ndarray, k: int, model: str, plan: UsedPlan,
+    clusters: np.ndarray | None = None,
 ) -> tuple[Comparison, list[Comparison], Comparison]:
-    """High/low split, GATES groups and top − bottom; D from GATES of Γ_blind − Γ_design (linear in Γ)."""
+    """High/low split, GATES groups and top − bottom; D from GATES of Γ_blind − Γ_design (linear in Γ); with
+    ``clusters`` SE(D) is cluster-robust (``correspondence.group_contrast_se``)."""
     gb, gd, gdiff = gates(tau, blind, k), gates(tau, design, k), gates(tau, blind - design, k)
+    ses = None if clusters is None else clustered_gates_ses(tau, blind - design, k, clusters)
 
-    def pair(b: Estimate, d: Estimate, diff: Estimate, part: str) -> Comparison:
+    def pair(b: Estimate, d: Estimate, diff: Estimate, part: str, se: float | None) -> Comparison:
         margin = plan.margin(cate_claim(model, part))
-        if not np.isfinite(diff.se):  # a group of < 2 units (heavy ties in τ̂ keep tied units together)
+        se = diff.se if se is None else se
+        if not np.isfinite(se):  # a group of < 2 units (heavy ties in τ̂ keep tied units together)
             return unscorable(b.estimate, d.estimate, margin, plan.alpha)
-        return compare(b.estimate, d.estimate, diff.se, margin, plan.alpha)
+        return compare(b.estimate, d.estimate, se, margin, plan.alpha)
 
-    groups = [pair(b.estimate, d.estimate, x.estimate, f"gate{g + 1}")
+    groups = [pair(b.estimate, d.estimate, x.estimate, f"gate{g + 1}", None if ses is None else ses[1][g])
               for g, (b, d, x) in enumerate(zip(gb.groups, gd.groups, gdiff.groups))]
     return (
-        pair(gb.high_low, gd.high_low, gdiff.high_low, "high_low"),
+        pair(gb.high_low, gd.high_low, gdiff.high_low, "high_low", None if ses is None else ses[0]),
         groups,
-        pair(gb.high_minus_low, gd.high_minus_low, gdiff.high_minus_low, "top_bottom"),
+        pair(gb.high_minus_low, gd.high_minus_low, gdiff.high_minus_low, "top_bottom",
+             None if ses is None else ses[2]),
     )
 
 
@@ -278,7 +287,7 @@ def _blp_comparison(u: _Units, tau: np.ndarray, margin: float, alpha: float
         return fit_b, fit_d, None
     sb = blp_beta2_scores(u.y, u.w, u.e_hat, tau, u.mu0, fit_b)
     sd_scores = blp_beta2_scores(u.y, u.w, u.rate, tau, u.mu0, fit_d)
-    return fit_b, fit_d, compare_scores(sb, sd_scores, margin, alpha)
+    return fit_b, fit_d, compare_scores(sb, sd_scores, margin, alpha, u.clusters)
 
 
 def _rank_comparison(tau: np.ndarray, blind: np.ndarray, design: np.ndarray, kind: str, n_boot: int, seed: int,
@@ -317,7 +326,7 @@ def _cate_comparison(
     blind, design = u.blind_scores(), u.oracle_scores()
     k = int(settings.get("gates_groups", 5))
     n_boot, seed = int(settings.get("n_boot", 200)), int(settings.get("seed", 0))
-    high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, k, key, plan)
+    high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, k, key, plan, u.clusters)
     fit_b, fit_d, beta2 = _blp_comparison(u, tau, plan.margin(cate_claim(key, "beta2")), plan.alpha)
     autoc, autoc_design_se, toc_curve = _rank_comparison(tau, blind, design, "autoc", n_boot, seed,
                                                          plan.margin(cate_claim(key, "autoc")), plan.alpha)
@@ -338,9 +347,12 @@ def _cate_comparison(
         model=key, n=u.n, tau_sd=float(np.std(tau, ddof=1)),
         high_low=high_low, gates=groups, top_minus_bottom=top_bottom,
         blp_blind=fit_b, blp_design=fit_d, beta2=beta2, autoc=autoc, qini=qini, toc_curve=toc_curve,
-        cost_curve=costs, r_loss_blind=Estimate.from_scores("r_loss_difference", loss_b, estimand="R-loss difference (blind: ê, m̂)"),
-        r_loss_design=Estimate.from_scores("r_loss_difference", loss_d, estimand="R-loss difference (known e_S, m*)"),
-        r_loss_difference=paired_difference(loss_b, loss_d),
+        cost_curve=costs,
+        r_loss_blind=Estimate.from_scores("r_loss_difference", loss_b, estimand="R-loss difference (blind: ê, m̂)",
+                                          clusters=u.clusters),
+        r_loss_design=Estimate.from_scores("r_loss_difference", loss_d, estimand="R-loss difference (known e_S, m*)",
+                                           clusters=u.clusters),
+        r_loss_difference=paired_difference(loss_b, loss_d, u.clusters),
         heterogeneity=status,
     )
 
@@ -379,8 +391,9 @@ def _rule_comparison(claim: dict[str, Any], u: _Units, plan: UsedPlan) -> RuleCo
     blind = rule_value(pi, *u.blind_arms(), u.cost)
     oracle = rule_value(pi, *u.oracle_arms(), u.cost)
     ipw = rule_value(pi, *u.ipw_arms(), u.cost)
-    value = compare_scores(blind.value.scores, oracle.value.scores, plan.delta, plan.alpha)
-    gain = compare_scores(blind.gain.scores, oracle.gain.scores, plan.margin(rule_claim(claim["rule"])), plan.alpha)
+    value = compare_scores(blind.value.scores, oracle.value.scores, plan.delta, plan.alpha, u.clusters)
+    gain = compare_scores(blind.gain.scores, oracle.gain.scores, plan.margin(rule_claim(claim["rule"])), plan.alpha,
+                          u.clusters)
     return RuleComparison(
         rule=claim["rule"], model=claim.get("model"), kind=claim.get("kind", ""), budget=claim.get("budget"),
         treated_share=blind.treated_share, claimed=_claim_summary(claim), value=value, gain=gain,
@@ -392,12 +405,16 @@ def _rule_comparison(claim: dict[str, Any], u: _Units, plan: UsedPlan) -> RuleCo
 # sites and meta-analysis
 # --------------------------------------------------------------------------------------------------------
 def _sites(study: Study, u: _Units, design: np.ndarray) -> pd.DataFrame:
-    """The design site table plus each site's oracle-AIPW estimate (mean of the design scores in the site)."""
+    """The design site table plus each site's oracle-AIPW estimate (mean of the design scores in the site);
+    with clusters the site table's SEs are CR2 and the oracle SE is the cluster-sum SE within the site."""
     data = study.blind
     declared = study.known_rate if study.rates_source == "declared" else None
-    table = site_table(data.y, data.w, study.site, study.known_rate, declared, study.stratum)
+    table = site_table(data.y, data.w, study.site, study.known_rate, declared, study.stratum, clusters=study.cluster)
     oracle = pd.DataFrame({"site": u.site, "score": design}).groupby("site")["score"]
     means, ses = oracle.mean(), oracle.std(ddof=1) / np.sqrt(oracle.count())
+    if u.clusters is not None:
+        ses = pd.Series({site: mean_and_se(design[u.site == site], u.clusters[u.site == site])[1]
+                         for site in means.index})
     table["oracle_aipw"] = table["site"].map(means)
     table["oracle_aipw_se"] = table["site"].map(ses)
     return table
@@ -459,10 +476,10 @@ def run_unmask(
     data = study.blind
     settings = claims.get("settings", {})
 
-    truth = design_ate(data.y, data.w, study.site, study.stratum)
+    truth = design_ate(data.y, data.w, study.site, study.stratum, clusters=study.cluster)
     u = _included_units(study, units, truth.included)
     design_scores = u.oracle_scores()
-    oracle = Estimate.from_scores("oracle_aipw", design_scores, estimand="ATE (included units)")
+    oracle = Estimate.from_scores("oracle_aipw", design_scores, estimand="ATE (included units)", clusters=u.clusters)
     sites = _sites(study, u, design_scores)
     tick("design")
 
@@ -488,10 +505,11 @@ def run_unmask(
     tau_by_model = {c["model"]: u.sidecar[tau_column(c["model"])].to_numpy(dtype=float)
                     for c in claims.get("cate", []) if tau_column(c["model"]) in u.sidecar}
     per_site = site_verdicts(tau_by_model, design_scores, u.site, u.w, plan.delta, plan.alpha,
-                             plan.multiplicity) if tau_by_model else None
+                             plan.multiplicity, clusters=u.clusters) if tau_by_model else None
     balance = within_site_balance(data.X, data.feature_names, data.w, study.site, plan.alpha, plan.multiplicity,
-                                  stratum=study.stratum)
-    references = reference_agreement(truth.estimate.scores, design_scores, plan.alpha, site=u.site)
+                                  stratum=study.stratum, clusters=_assigned_clusters(study))
+    references = reference_agreement(truth.estimate.scores, design_scores, plan.alpha, site=u.site,
+                                     clusters=u.clusters)
     tick("sites")
 
     moved = None
@@ -527,7 +545,7 @@ def run_unmask(
             "n_included": truth.n_included, "excluded_sites": list(truth.excluded_sites),
             "margin": plan.delta, "margin_source": _margin_source(plan), "alpha": plan.alpha,
             "outcome": data.outcome, "outcome_sd": float(data.outcome_sd()), "rates_source": study.rates_source,
-            "fingerprint": data.fingerprint, "seed": seed,
+            "fingerprint": data.fingerprint, "seed": seed, **_clustering(study, truth.included),
         },
         rates_source=study.rates_source, sites=sites, design=truth, oracle=oracle,
         naive=naive_ate(data.y, data.w), ate=ate, propensity=propensity, meta_dl=meta_dl, meta_reml=meta_reml,
@@ -539,6 +557,28 @@ def run_unmask(
     )
     card.headline = headline(card)
     return card
+
+
+def _assigned_clusters(study: Study) -> np.ndarray | None:
+    """The cluster labels when whole clusters were assigned (the balance check's unit), else None."""
+    design = study.cluster_design
+    if study.cluster is None or design is None or not design.cluster_randomized:
+        return None
+    return np.asarray(study.cluster, dtype=object)
+
+
+def _clustering(study: Study, included: np.ndarray) -> dict[str, Any]:
+    """``{"clustering": {...}}`` for the scorecard's study record when units are clustered, else ``{}`` (a missing
+    field reads as unclustered): clusters among the scored units, whether whole clusters were assigned."""
+    if study.cluster is None:
+        return {}
+    labels = np.asarray(study.cluster, dtype=object)[included]
+    design = study.cluster_design
+    return {"clustering": {
+        "clustered": True, "n_clusters": int(pd.Series(labels).nunique()),
+        "cluster_randomized": bool(design is not None and design.cluster_randomized),
+        "se": "cluster-robust: CR2 per site, cluster sums of the per-unit scores for paired differences",
+    }}
 
 
 def _sensitivity(study: Study, units: pd.DataFrame, included: np.ndarray, ate: list[AteComparison],

@@ -181,6 +181,7 @@ def site_verdicts(
     margin: float,
     alpha: float = ALPHA,
     method: str = DEFAULT_MULTIPLICITY,
+    clusters: Any = None,
 ) -> SiteVerdicts:
     """Each model's site-restricted mean of τ̂ against the site's oracle AIPW mean (module docstring).
 
@@ -188,6 +189,8 @@ def site_verdicts(
     ``design_scores`` (Γ_design), ``site`` and ``w``.  Sites with fewer than 2 units in an arm are skipped and
     listed in ``skipped``.  P-values are adjusted across the scored sites of each model with ``method``
     (``"holm"``, Holm 1979; ``"bh"``, Benjamini & Hochberg 1995); the verdict uses the adjusted p-values.
+    With ``clusters`` (one label per unit, nested in sites) every per-site SE is the cluster-sum SE within the
+    site (Liang & Zeger 1986; ``core.clusters.cluster_mean_se``).
     """
     alpha_level(alpha, upper=0.5)
     check_multiplicity(method)
@@ -199,9 +202,10 @@ def site_verdicts(
         raise SiteproofError("no effect model was given", "pass {model name: out-of-fold τ̂} for at least one model")
     taus = {str(m): unit_vector(f"τ̂ of model {m}", t, n) for m, t in tau.items()}
     scored, skipped = _scorable_sites(labels, arm)
+    groups = None if clusters is None else np.asarray(clusters, dtype=object)
     rows: list[SiteVerdict] = []
     for model, t in taus.items():
-        rows += _model_rows(model, t, design, arm, scored, margin, alpha, method)
+        rows += _model_rows(model, t, design, arm, scored, margin, alpha, method, groups)
     return SiteVerdicts(tuple(rows), tuple(skipped), float(margin), float(alpha), method, tuple(taus))
 
 
@@ -232,16 +236,19 @@ def _scorable_sites(labels: np.ndarray, w: np.ndarray) -> tuple[dict[str, np.nda
 
 def _model_rows(
     model: str, tau: np.ndarray, design: np.ndarray, w: np.ndarray, sites: dict[str, np.ndarray],
-    margin: float, alpha: float, method: str,
+    margin: float, alpha: float, method: str, clusters: np.ndarray | None = None,
 ) -> list[SiteVerdict]:
     """The rows of one model: paired comparison per site, then the adjustment across its sites."""
     comparisons, parts = [], []
     for s, index in sites.items():
         n1 = int(np.sum(w[index] == 1))
-        comparisons.append(compare_scores(tau[index], design[index], margin, alpha))
+        mine = None if clusters is None else clusters[index]
+        comparisons.append(compare_scores(tau[index], design[index], margin, alpha, mine))
         parts.append((s, n1, index.size - n1,
-                      Estimate.from_scores(f"{model} τ̂ mean", tau[index], estimand=f"site ATE ({s}), blind"),
-                      Estimate.from_scores("oracle_aipw", design[index], estimand=f"site ATE ({s}), design")))
+                      Estimate.from_scores(f"{model} τ̂ mean", tau[index], estimand=f"site ATE ({s}), blind",
+                                           clusters=mine),
+                      Estimate.from_scores("oracle_aipw", design[index], estimand=f"site ATE ({s}), design",
+                                           clusters=mine)))
     p_diff = adjust([c.p_value for c in comparisons], method)
     p_eq = adjust([c.p_equivalence for c in comparisons], method)
     return [
@@ -287,7 +294,7 @@ class ReferenceAgreement(ResultsMixin):
 
 
 def reference_agreement(
-    dim_scores: Any, oracle_scores: Any, alpha: float = ALPHA, site: Any = None
+    dim_scores: Any, oracle_scores: Any, alpha: float = ALPHA, site: Any = None, clusters: Any = None
 ) -> ReferenceAgreement:
     """D = mean(ψ_DiM − Γ_oracle), SE = sd(ψ_DiM − Γ_oracle)/√n, z = D/SE, two-sided normal p.
 
@@ -296,12 +303,14 @@ def reference_agreement(
     average effect under each site's randomization, so |z| > z_{1−α/2} (``flagged``) points at a declared
     rate that is not the one used, or at a stratum the DiM respected and the rate did not.  With ``site``,
     the same comparison is made within each site (sites with at least 2 units).  With SE = 0, z is NaN and
-    the row is flagged exactly when D ≠ 0.
+    the row is flagged exactly when D ≠ 0.  With ``clusters`` the SEs come from cluster sums of the paired
+    differences (Liang & Zeger 1986).
     """
     alpha_level(alpha)
     dim = unit_vector("the difference-in-means scores", dim_scores)
     oracle = unit_vector("the oracle AIPW scores", oracle_scores, dim.size)
-    pooled = _agreement_row("pooled", dim, oracle, alpha)
+    cl = None if clusters is None else np.asarray(clusters, dtype=object)
+    pooled = _agreement_row("pooled", dim, oracle, alpha, cl)
     rows: list[dict[str, Any]] = []
     if site is not None:
         labels = site_labels(site, dim.size)
@@ -309,12 +318,14 @@ def reference_agreement(
         for s in site_order(labels):
             index = np.asarray(groups[s])
             if index.size >= 2:
-                rows.append(_agreement_row(s, dim[index], oracle[index], alpha))
+                rows.append(_agreement_row(s, dim[index], oracle[index], alpha,
+                                           None if cl is None else cl[index]))
     return ReferenceAgreement(pooled, tuple(rows), float(alpha))
 
 
-def _agreement_row(label: str, dim: np.ndarray, oracle: np.ndarray, alpha: float) -> dict[str, Any]:
-    diff = paired_difference(dim, oracle)
+def _agreement_row(label: str, dim: np.ndarray, oracle: np.ndarray, alpha: float,
+                   clusters: np.ndarray | None = None) -> dict[str, Any]:
+    diff = paired_difference(dim, oracle, clusters)
     z = diff.z
     p = diff.p_value if np.isfinite(z) else (1.0 if diff.estimate == 0.0 else 0.0)
     crit = float(stats.norm.ppf(1.0 - alpha / 2.0))
