@@ -38,6 +38,13 @@ Caruana 2005); the calibration hierarchy (Van Calster et al. 2016, J. Clin. Epid
 index (Austin & Steyerberg 2019, Stat. Med. 38:4051–4065); Schuirmann (1987) equivalence tests; random forests (Breiman 2001) for the site classifier; Kish (1965) effective sample size
 n_eff = (Σw)²/Σw²; HC2 standard errors (MacKinnon & White 1985; Imbens & Kolesár 2016); McFadden (1974)
 pseudo-R² for the site classifier.
+
+Clustered units (``clusters=``, one label per unit, default None = unit-level figures unchanged): every SE is
+cluster-robust.  Bin, site and accuracy SEs are ``core.clusters.cluster_mean_se`` of the per-unit values (the
+sandwich for a mean, Liang & Zeger 1986); the calibration line's SEs are the CR2 cluster sandwich of OLS,
+V = (X'X)⁻¹ Σ_g X_g'A_g e_g e_g'A_g X_g (X'X)⁻¹ with A_g = (I − H_gg)^(−1/2) (Bell & McCaffrey 2002; Cameron
+& Miller 2015), the cluster counterpart of the HC2 used without clusters (equal to it with one unit per
+cluster).  The RMSE and its floor are point figures and carry no SE.
 """
 
 from __future__ import annotations
@@ -54,6 +61,7 @@ from sklearn.ensemble import RandomForestClassifier
 from sklearn.model_selection import KFold, StratifiedKFold, cross_val_predict
 
 from ..core.checks import at_least, in_unit_interval, same_length
+from ..core.clusters import cluster_codes, cluster_mean_se
 from ..core.errors import SiteproofError
 from ..blind.average import kish_ess
 from ..core.estimates import Estimate, normal_ci
@@ -154,13 +162,17 @@ class PropensityRecovery:
         }
 
 
-def calibration_bins(e_hat: np.ndarray, known_rate: np.ndarray, n_bins: int = 10) -> pd.DataFrame:
+def calibration_bins(e_hat: np.ndarray, known_rate: np.ndarray, n_bins: int = 10,
+                     clusters: Any = None) -> pd.DataFrame:
     """Mean known rate within quantile bins of ê (deciles by default) beside the bin's mean ê.
 
     For a correct ê, E[e_S | ê] = ê, so ``known_rate_mean − e_hat_mean`` should be ≈ 0 in every bin; its SE is
-    sd(e_S in bin)/√n_bin.  Ties in ê are kept in one bin (bins are ranks of ê cut into equal counts).
+    sd(e_S in bin)/√n_bin, or with ``clusters`` the cluster-sum SE of e_S over the bin's units (Liang & Zeger
+    1986; NaN when the bin holds one cluster).  Ties in ê are kept in one bin (bins are ranks of ê cut into
+    equal counts).
     """
     e_hat, known_rate = _pair(e_hat, known_rate)
+    clusters = _labels(clusters, e_hat.size)
     ranks = pd.Series(e_hat).rank(method="first").to_numpy()
     bins = np.minimum((ranks - 1) * n_bins // e_hat.size, n_bins - 1).astype(int)
     rows = []
@@ -169,7 +181,7 @@ def calibration_bins(e_hat: np.ndarray, known_rate: np.ndarray, n_bins: int = 10
         if not inside.any():
             continue
         rate = known_rate[inside]
-        se = float(rate.std(ddof=1) / np.sqrt(rate.size)) if rate.size > 1 else float("nan")
+        se = _mean_se(rate, None if clusters is None else clusters[inside])
         rows.append({
             "bin": b + 1,
             "n": int(inside.sum()),
@@ -183,13 +195,17 @@ def calibration_bins(e_hat: np.ndarray, known_rate: np.ndarray, n_bins: int = 10
     return pd.DataFrame(rows)
 
 
-def calibration_line(e_hat: np.ndarray, known_rate: np.ndarray) -> tuple[Estimate, Estimate]:
+def calibration_line(e_hat: np.ndarray, known_rate: np.ndarray,
+                     clusters: Any = None) -> tuple[Estimate, Estimate]:
     """Slope and intercept of the least-squares line e_S = a + b·ê, HC2 standard errors.
 
     Ideal (correct ê): b = 1, a = 0.  b < 1 means ê is too spread out (over-confident), b > 1 too compressed.
-    HC2 (MacKinnon & White 1985; Imbens & Kolesár 2016) because the residual variance changes with ê.
+    HC2 (MacKinnon & White 1985; Imbens & Kolesár 2016) because the residual variance changes with ê.  With
+    ``clusters`` the SEs are the CR2 cluster sandwich of :func:`cluster_ols_se` (Bell & McCaffrey 2002;
+    Cameron & Miller 2015), which is HC2 when every cluster has one unit.
     """
     e_hat, known_rate = _pair(e_hat, known_rate)
+    clusters = _labels(clusters, e_hat.size)
     if np.ptp(e_hat) == 0:
         nan = float("nan")
         note = "ê is constant, so the calibration line is undefined"
@@ -197,27 +213,62 @@ def calibration_line(e_hat: np.ndarray, known_rate: np.ndarray) -> tuple[Estimat
             Estimate("calibration slope", nan, nan, (nan, nan), "slope of e_S on ê (ideal 1)", note=note),
             Estimate("calibration intercept", nan, nan, (nan, nan), "intercept of e_S on ê (ideal 0)", note=note),
         )
-    fit = sm.OLS(known_rate, sm.add_constant(e_hat)).fit(cov_type="HC2")
+    design = sm.add_constant(e_hat)
+    fit = sm.OLS(known_rate, design).fit(cov_type="HC2")
     (a, b), (se_a, se_b) = fit.params, fit.bse
+    if clusters is not None:
+        se_a, se_b = cluster_ols_se(design, known_rate - design @ fit.params, clusters)
     return (
         Estimate.from_value("calibration slope", b, se_b, estimand="slope of e_S on ê (ideal 1)"),
         Estimate.from_value("calibration intercept", a, se_a, estimand="intercept of e_S on ê (ideal 0)"),
     )
 
 
-def site_means(e_hat: np.ndarray, known_rate: np.ndarray, site: np.ndarray) -> pd.DataFrame:
+def cluster_ols_se(design: np.ndarray, residuals: np.ndarray, clusters: Any) -> np.ndarray:
+    """CR2 cluster-robust SEs of OLS coefficients (Bell & McCaffrey 2002; Cameron & Miller 2015, §VI.B).
+
+    V = B⁻¹ (Σ_g s_g s_gᵀ) B⁻¹ with B = X'X and s_g = X_g' A_g e_g the adjusted cluster sums of the score
+    contributions x_i e_i (Liang & Zeger 1986 for A_g = I), A_g = (I − H_gg)^(−1/2), H_gg = X_g B⁻¹ X_g'.
+    H_gg has rank ≤ k: with the thin SVD X_g = U S Vᵀ, H_gg = U C Uᵀ, C = S Vᵀ B⁻¹ V S = Q Λ Qᵀ, so
+    A_g = I + P((1 − Λ)^(−1/2) − 1)Pᵀ with P = UQ.  With one unit per cluster A_g = (1 − h_ii)^(−1/2) and V is
+    HC2 (MacKinnon & White 1985).  NaN with fewer than two clusters or a cluster of leverage 1.
+    """
+    codes, labels = cluster_codes(clusters, residuals.size)
+    k = design.shape[1]
+    if labels.size < 2:
+        return np.full(k, np.nan)
+    bread = np.linalg.inv(design.T @ design)
+    order = np.argsort(codes, kind="stable")
+    starts = np.cumsum(np.bincount(codes, minlength=labels.size))[:-1]
+    meat = np.zeros((k, k))
+    for rows in np.split(order, starts):
+        x_g, e_g = design[rows], residuals[rows]
+        u, sing, vt = np.linalg.svd(x_g, full_matrices=False)
+        lam, q = np.linalg.eigh((sing[:, None] * vt) @ bread @ (vt.T * sing[None, :]))
+        if np.any(lam >= 1.0 - 1e-12):
+            return np.full(k, np.nan)
+        p = u @ q
+        adjusted = e_g + p @ ((1.0 / np.sqrt(1.0 - lam) - 1.0) * (p.T @ e_g))
+        s_g = x_g.T @ adjusted
+        meat += np.outer(s_g, s_g)
+    return np.sqrt(np.diag(bread @ meat @ bread))
+
+
+def site_means(e_hat: np.ndarray, known_rate: np.ndarray, site: np.ndarray, clusters: Any = None) -> pd.DataFrame:
     """Per site: n, known rate (mean over the site's units; constant unless strata differ), mean ê with SE.
 
     The mean ê of a site need not equal its rate: ê averages the rates of all sites whose units look alike.
-    The gap shows how far the learned propensity was pulled toward the other sites.
+    The gap shows how far the learned propensity was pulled toward the other sites.  The SE is sd(ê)/√n_s, or
+    with ``clusters`` the cluster-sum SE over the site's units (Liang & Zeger 1986).
     """
     e_hat, known_rate = _pair(e_hat, known_rate)
+    clusters = _labels(clusters, e_hat.size)
     site = np.asarray(site).astype(str)
     rows = []
     for s in pd.unique(site):
         inside = site == s
         e_s = e_hat[inside]
-        se = float(e_s.std(ddof=1) / np.sqrt(e_s.size)) if e_s.size > 1 else float("nan")
+        se = _mean_se(e_s, None if clusters is None else clusters[inside])
         rows.append({
             "site": str(s),
             "n": int(inside.sum()),
@@ -306,21 +357,25 @@ def default_site_learner(seed: int) -> ClassifierMixin:
 
 def site_predictability(
     X: np.ndarray, site: np.ndarray, *, folds: int = 5, seed: int = 0, learner: ClassifierMixin | None = None,
-    max_units: int = SITE_MODEL_MAX_UNITS,
+    max_units: int = SITE_MODEL_MAX_UNITS, clusters: Any = None,
 ) -> SitePrediction:
     """Cross-validated accuracy of predicting the site from the covariates, vs the majority share.
 
     On all units, or on a seeded random subsample of ``max_units`` when there are more (the accuracy's SE is
     then ≈ 0.5 % at most, enough for a diagnostic).  K-fold (stratified by site when every site has ≥ K
     units, else plain shuffled K-fold), seeded; each unit's predicted site comes from a model that never saw
-    it.  Accuracy a = mean(ŝ_i = s_i) with SE √(a(1−a)/n).
+    it.  Accuracy a = mean(ŝ_i = s_i) with SE √(a(1−a)/n); with ``clusters`` the cluster-sum SE of the
+    per-unit hits h_i, √(Σ_g (Σ_{i∈g} (h_i − a))²)/n (Liang & Zeger 1986, without the G/(G − 1) factor, so that
+    with one unit per cluster it is the binomial SE exactly).  The folds stay unit-level (a diagnostic, not an estimate).
     """
     X = np.asarray(X, dtype=float)
     site = np.asarray(site).astype(str)
+    clusters = _labels(clusters, site.size)
     index = np.arange(site.size)
     if site.size > max_units:
         index = np.sort(np.random.default_rng(seed).choice(site.size, size=max_units, replace=False))
         X, site = X[index], site[index]
+        clusters = None if clusters is None else clusters[index]
     classes, counts = np.unique(site, return_counts=True)
     if classes.size < 2:
         raise SiteproofError("only one site in the data, so there is no site to predict", "pool at least 2 sites")
@@ -335,7 +390,7 @@ def site_predictability(
     predicted = classes[np.argmax(proba, axis=1)]
     correct = (predicted == site).astype(float)
     acc = float(correct.mean())
-    se = float(np.sqrt(acc * (1.0 - acc) / site.size))
+    se = float(np.sqrt(acc * (1.0 - acc) / site.size)) if clusters is None else _cr0_mean_se(correct, clusters)
     majority = float(counts.max() / site.size)
     share = counts / site.size
     positions = np.searchsorted(classes, site)
@@ -368,24 +423,27 @@ def recover_propensity(
     folds: int = 5,
     seed: int = 0,
     site_learner: ClassifierMixin | None = None,
+    clusters: Any = None,
 ) -> PropensityRecovery:
     """All propensity-recovery figures: calibration, RMSE, weights and site predictability.  Pass ``X`` to add the site-predictability check and
-    the estimated RMSE floor; without it both are omitted (floor NaN)."""
+    the estimated RMSE floor; without it both are omitted (floor NaN).  ``clusters`` (one label per unit,
+    default None) makes every SE cluster-robust (module docstring)."""
     e_hat, known_rate = _pair(e_hat, known_rate)
     site = np.asarray(site).astype(str)
-    slope, intercept = calibration_line(e_hat, known_rate)
+    clusters = _labels(clusters, e_hat.size)
+    slope, intercept = calibration_line(e_hat, known_rate, clusters)
     prediction = None
     floor = float("nan")
     if X is not None:
-        prediction = site_predictability(X, site, folds=folds, seed=seed, learner=site_learner)
+        prediction = site_predictability(X, site, folds=folds, seed=seed, learner=site_learner, clusters=clusters)
         rates = np.array([known_rate[site == c].mean() for c in prediction.classes])
         floor = rmse_floor(prediction.proba, rates)
     return PropensityRecovery(
         n=int(e_hat.size),
         calibration_slope=slope,
         calibration_intercept=intercept,
-        bins=calibration_bins(e_hat, known_rate, n_bins),
-        by_site=site_means(e_hat, known_rate, site),
+        bins=calibration_bins(e_hat, known_rate, n_bins, clusters),
+        by_site=site_means(e_hat, known_rate, site, clusters),
         rmse=rmse(e_hat, known_rate),
         rmse_floor=floor,
         weights=weight_comparison(w, e_hat, known_rate),
@@ -403,3 +461,25 @@ def _pair(e_hat: np.ndarray, known_rate: np.ndarray) -> tuple[np.ndarray, np.nda
     in_unit_interval("learned propensities", e_hat, fix, strict=True)
     in_unit_interval("known rates", known_rate, fix, strict=True)
     return e_hat, known_rate
+
+
+def _labels(clusters: Any, n: int) -> np.ndarray | None:
+    """The cluster labels as an object array of length n (SiteproofError otherwise), or None."""
+    if clusters is None:
+        return None
+    cluster_codes(clusters, n)
+    return np.asarray(clusters, dtype=object)
+
+
+def _mean_se(values: np.ndarray, clusters: np.ndarray | None) -> float:
+    """sd/√n (n − 1 divisor; NaN for one unit), or the cluster-sum SE with ``clusters``."""
+    if clusters is not None:
+        return cluster_mean_se(values, clusters)
+    return float(values.std(ddof=1) / np.sqrt(values.size)) if values.size > 1 else float("nan")
+
+
+def _cr0_mean_se(values: np.ndarray, clusters: np.ndarray) -> float:
+    """√(Σ_g T_g²)/n with T_g the cluster sums of values − mean (Liang & Zeger 1986, no small-sample factor)."""
+    codes, labels = cluster_codes(clusters, values.size)
+    totals = np.bincount(codes, weights=values - values.mean(), minlength=labels.size)
+    return float(np.sqrt(np.sum(totals ** 2)) / values.size)

@@ -41,6 +41,10 @@ on all covariates, so that the small learner's own approximation error cancels (
 
 The sensitivity analysis **warned** the analyst when the realized bias |θ̂ − θ_design| lies inside the bound
 at the strongest benchmark (k× the covariate whose benchmark bound is largest).
+
+Clustered units (``clusters=``, default None): the SE of the AIPW estimate, and so the level-α robustness
+value, is the cluster-sum SE of its per-unit scores (Liang & Zeger 1986; ``core.clusters.cluster_mean_se``).
+The bound itself (σ², ν², partial R²) is a population moment and does not change with the clustering.
 """
 
 from __future__ import annotations
@@ -332,6 +336,7 @@ def sensitivity_analysis(
     folds: np.ndarray | None = None, realized_bias: Estimate | float | None = None, k: float = 1.0,
     mode: str = "project", learner: Any = None, learners: Any = None, clip: tuple[float, float] = (0.01, 0.99),
     binary_outcome: bool = False, alpha: float = ALPHA, seed: int = 0, estimator: str = "aipw",
+    clusters: Any = None,
 ) -> SensitivityResult:
     """Omitted-variable-bias bounds of the cross-fitted AIPW estimate (module docstring for the formulas).
 
@@ -339,13 +344,14 @@ def sensitivity_analysis(
     Benchmarks need ``X`` with its ``feature_names``, the raw ``covariates`` (one benchmark per covariate and
     its encoded features) and the cross-fitting ``folds``; ``mode`` "project" (cheap, ``learner`` = the small
     regressor) or "refit" (``learners`` as in ``cross_fit_nuisances``).  ``realized_bias`` = blind − design
-    (after unmasking) gives ``robustness_value_to_design`` and ``warned``.
+    (after unmasking) gives ``robustness_value_to_design`` and ``warned``.  ``clusters`` (one label per unit)
+    makes the estimate's SE cluster-robust.
     """
     y, e = finite_vector("y", y), finite_vector("e_hat", e_hat)
     w = finite_vector("w", w).astype(float)
     fit = _Fit(y, w, e, finite_vector("mu0", mu0), finite_vector("mu1", mu1), clip)
     alpha_r, m_r = ate_riesz(w, e)
-    estimate = Estimate.from_scores(estimator, fit.mu1 - fit.mu0 + alpha_r * (y - fit.g))
+    estimate = Estimate.from_scores(estimator, fit.mu1 - fit.mu0 + alpha_r * (y - fit.g), clusters=clusters)
     sigma2, nu2 = ovb_scale(y - fit.g, m_r)
     scale = math.sqrt(sigma2 * nu2)
     benchmarks = []
@@ -378,13 +384,15 @@ def sensitivity_for_claims(
 ) -> SensitivityResult:
     """:func:`sensitivity_analysis` of the blind AIPW from a study and its claims' per-unit sidecar
     (columns ``e_hat``, ``mu0``, ``mu1``, ``fold``), on the ``included`` units (default: all), benchmarked on
-    every covariate of the study — the hook for ``run_unmask`` (``realized_bias`` = the AIPW comparison's D)."""
+    every covariate of the study — the hook for ``run_unmask`` (``realized_bias`` = the AIPW comparison's D).
+    With ``study.cluster`` set the SE is cluster-robust over the included units' clusters."""
     data = study.blind
     rows = np.ones(data.n, dtype=bool) if included is None else np.asarray(included, dtype=bool)
     side = units.loc[rows]
+    clusters = None if study.cluster is None else np.asarray(study.cluster, dtype=object)[rows]
     return sensitivity_analysis(
         data.y[rows], data.w[rows], side["e_hat"].to_numpy(float), side["mu0"].to_numpy(float),
         side["mu1"].to_numpy(float), X=data.X[rows], feature_names=data.feature_names, covariates=data.covariates,
         folds=side["fold"].to_numpy(), realized_bias=realized_bias, k=k, mode=mode, clip=clip,
-        binary_outcome=data.binary_outcome, seed=seed,
+        binary_outcome=data.binary_outcome, seed=seed, clusters=clusters,
     )

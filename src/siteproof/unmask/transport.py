@@ -17,6 +17,12 @@ Beside the transported AUTOC we report the AUTOC of the full run's out-of-fold �
 models saw the other units of site s) and the paired difference "transported − in-sample" on the same
 half-samples: the price of never having seen the site.
 
+Clustered data (``BlindData.clusters``, the shuffled integer codes of the blind view): the training data keeps
+the codes of its rows, re-coded 0..G'−1 in order of first appearance (``BlindData.n_clusters`` reads the
+largest code), so the blind rerun keeps clusters whole; the held-out site's rule values and gains get the
+cluster-sum SE of their per-unit scores (Liang & Zeger 1986; Cameron & Miller 2015).  The AUTOC half-samples
+stay those of ``blind.evaluation.rank_metric``.
+
 Sites run in parallel in local processes (``concurrent.futures.ProcessPoolExecutor`` with the ``spawn``
 start method, ``workers`` of them); every task is seeded by the blind configuration and results are
 collected in site order, so the output does not depend on ``workers``.
@@ -36,6 +42,7 @@ import pandas as pd
 
 from ..blind.analysis import BlindConfig, run_blind
 from ..intake.sitetrials import site_order
+from ..core.clusters import cluster_codes
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 from ..blind.evaluation import rank_metric
@@ -139,6 +146,7 @@ class _Task:
     cost: np.ndarray | None
     tau_full: dict[str, np.ndarray]
     config: BlindConfig
+    clusters: np.ndarray | None = None
 
 
 def eligible_sites(
@@ -181,16 +189,34 @@ def hold_out_site(task: _Task, n_boot: int, seed: int) -> SiteTransport:
                 "autoc_transport_loss", float(moved.estimate[0] - here.estimate[0]), float(d.std(ddof=1)),
                 estimand="AUTOC transported − in-sample",
             )
-        rules[f"{key}.threshold"] = rule_value(threshold_rule(tau, task.cost), g0, g1, task.cost)
+        rules[f"{key}.threshold"] = _rule(threshold_rule(tau, task.cost), g0, g1, task)
         for q in task.config.budgets:
-            rules[f"{key}.top{round(q * 100)}"] = rule_value(budget_rule(tau, q), g0, g1, task.cost)
+            rules[f"{key}.top{round(q * 100)}"] = _rule(budget_rule(tau, q), g0, g1, task)
     if claims.tree is not None:
-        rules["tree"] = rule_value(claims.tree.predict(task.X), g0, g1, task.cost)
+        rules["tree"] = _rule(claims.tree.predict(task.X), g0, g1, task)
     return SiteTransport(
         site=task.site, n=int(task.y.size), n_train=int(task.train.y.size), rate=float(task.rate.mean()),
         autoc=autoc, autoc_in_sample=in_sample, autoc_loss=loss, rules=rules,
         seconds=time.perf_counter() - start,
     )
+
+
+def _rule(pi: np.ndarray, g0: np.ndarray, g1: np.ndarray, task: _Task) -> RuleValue:
+    """``rules.rule_value`` on the held-out site; with clusters its value and gain SEs are the cluster-sum SEs
+    of the same per-unit scores (:func:`clustered_rule_value`)."""
+    return clustered_rule_value(rule_value(pi, g0, g1, task.cost), task.clusters)
+
+
+def clustered_rule_value(val: RuleValue, clusters: np.ndarray | None) -> RuleValue:
+    """The rule value and gain re-estimated from their per-unit scores with cluster-sum SEs,
+    SE = √(G/(G − 1)·Σ_g T_g²)/n with T_g the cluster sums of ψ − ψ̄ (Liang & Zeger 1986); unchanged for None."""
+    if clusters is None:
+        return val
+
+    def again(est: Estimate) -> Estimate:
+        return Estimate.from_scores(est.name, est.scores, estimand=est.estimand, note=est.note, clusters=clusters)
+
+    return dataclasses.replace(val, value=again(val.value), gain=again(val.gain))
 
 
 def leave_one_site_out(
@@ -238,12 +264,14 @@ def leave_one_site_out(
 
 
 def training_data(data: BlindData, keep: np.ndarray) -> BlindData:
-    """The blind data restricted to the rows in ``keep`` (data order), with its own fingerprint."""
+    """The blind data restricted to the rows in ``keep`` (data order), with its own fingerprint; cluster codes
+    follow their rows and are re-coded 0..G'−1 (order of first appearance)."""
     X, y, w, key = data.X[keep], data.y[keep], data.w[keep], data.row_key[keep]
     cost = None if data.cost is None else data.cost[keep]
+    clusters = None if data.clusters is None else cluster_codes(np.asarray(data.clusters)[keep])[0]
     return dataclasses.replace(
-        data, X=X, y=y, w=w, row_key=key, cost=cost,
-        fingerprint=fingerprint(key, y, w, X, data.feature_names, cost),
+        data, X=X, y=y, w=w, row_key=key, cost=cost, clusters=clusters,
+        fingerprint=fingerprint(key, y, w, X, data.feature_names, cost, clusters),
         raw_covariates=data.raw_covariates.loc[keep].reset_index(drop=True),
     )
 
@@ -263,4 +291,5 @@ def _task(data: BlindData, site: np.ndarray, rate: np.ndarray, mu0: np.ndarray, 
         cost=None if data.cost is None else data.cost[held],
         tau_full={k: np.asarray(v, dtype=float)[held] for k, v in tau_full.items()},
         config=config,
+        clusters=None if data.clusters is None else np.asarray(data.clusters)[held],
     )
