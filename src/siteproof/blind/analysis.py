@@ -146,13 +146,13 @@ def _timed(timings: dict[str, float], key: str, start: float) -> float:
 
 def _ate_claims(data: BlindData, nuis: Nuisances) -> list:
     """The five average-effect estimators, each an Estimate with per-unit scores."""
-    y, w, e = data.y, data.w, nuis.e_hat
+    y, w, e, c = data.y, data.w, nuis.e_hat, data.clusters
     return [
-        naive(y, w),
-        regression_adjusted(data.X, y, w),
-        ipw_hajek(y, w, e),
-        aipw(y, w, e, nuis.mu0, nuis.mu1),
-        overlap_weighted(y, w, e),
+        naive(y, w, c),
+        regression_adjusted(data.X, y, w, c),
+        ipw_hajek(y, w, e, c),
+        aipw(y, w, e, nuis.mu0, nuis.mu1, c),
+        overlap_weighted(y, w, e, c),
     ]
 
 
@@ -166,17 +166,17 @@ def _evaluate_model(
     gamma: np.ndarray, config: BlindConfig, ranks: dict[str, RankResult],
 ) -> dict[str, Any]:
     """All evaluation figures of one CATE model, with the blind AIPW scores."""
-    y, w, e = data.y, data.w, nuis.e_hat
+    y, w, e, c = data.y, data.w, nuis.e_hat, data.clusters
     out: dict[str, Any] = {"model": key, "tau_summary": _tau_summary(tau)}
-    out["r_loss"] = r_loss_comparison(y, w, e, nuis.m_hat, tau, tau_const).to_dict()
+    out["r_loss"] = r_loss_comparison(y, w, e, nuis.m_hat, tau, tau_const, clusters=c).to_dict()
     if key == "constant":
         return out
-    out["gates"] = gates(tau, gamma, k=config.gates_groups).to_dict()
-    out["blp"] = blp(y, w, e, tau, nuis.mu0).to_dict()
+    out["gates"] = gates(tau, gamma, k=config.gates_groups, clusters=c).to_dict()
+    out["blp"] = blp(y, w, e, tau, nuis.mu0, clusters=c).to_dict()
     for kind in ("autoc", "qini"):
         out[kind] = ranks[kind].to_dict()
     if data.cost is not None:
-        out["cost_curve"] = cost_curve(tau, gamma, data.cost).to_dict()
+        out["cost_curve"] = cost_curve(tau, gamma, data.cost, clusters=c).to_dict()
     return out
 
 
@@ -190,7 +190,7 @@ def _rule_claims(
 
     def add(model: str | None, kind: str, budget: float | None, pi: np.ndarray, text: str = "") -> None:
         name = rule_name(model, kind, budget)
-        value = rule_value(pi, gamma0, gamma1, data.cost)
+        value = rule_value(pi, gamma0, gamma1, data.cost, clusters=data.clusters)
         rec = {"rule": name, "model": model, "kind": kind, "budget": budget, **value.to_dict()}
         if text:
             rec["tree_text"] = text
@@ -244,6 +244,8 @@ def _data_record(data: BlindData) -> dict[str, Any]:
         "outcome_sd": float(data.outcome_sd()),
         "has_cost": data.cost is not None,
         "n_treated": int(data.w.sum()),
+        "clustered": data.clusters is not None,
+        "n_clusters": data.n_clusters,
     }
 
 
@@ -280,7 +282,7 @@ def _run_blind(data: BlindData, config: BlindConfig, progress: Callable[[str], N
     timings: dict[str, float] = {}
     t0 = start = time.perf_counter()
 
-    folds = make_folds(data.w, config.folds, config.seed)
+    folds = make_folds(data.w, config.folds, config.seed, groups=data.clusters)
     nuis = cross_fit_nuisances(
         data.X, data.y, data.w, folds, binary_outcome=data.binary_outcome,
         learners=config.nuisance_learners, clip=config.clip, seed=config.seed, progress=tick,
@@ -307,7 +309,7 @@ def _run_blind(data: BlindData, config: BlindConfig, progress: Callable[[str], N
     gamma = ates[ATE_ESTIMATORS.index("aipw")].scores
     tau_const = fits["constant"].tau
     ranks = shared_rank_metrics({k: f.tau for k, f in fits.items() if k != "constant"}, gamma,
-                                n_boot=config.n_boot, seed=config.seed)
+                                n_boot=config.n_boot, seed=config.seed, clusters=data.clusters)
     cate = [_evaluate_model(k, f.tau, tau_const, data, nuis, gamma, config, ranks.get(k, {})) for k, f in fits.items()]
     start = _timed(timings, "evaluation", start)
 

@@ -40,11 +40,12 @@ _AUC_BINS = 32
 # ----------------------------------------------------------------------------------------------- estimators
 
 
-def naive(y: np.ndarray, w: np.ndarray) -> Estimate:
+def naive(y: np.ndarray, w: np.ndarray, clusters: Any = None) -> Estimate:
     """Difference in means ȳ₁ − ȳ₀ with Neyman (1923) SE √(s₁²/n₁ + s₀²/n₀).
 
     Scores (influence-function form, p̂ = n₁/n):
     ψ_i = τ̂ + W_i (Y_i − ȳ₁)/p̂ − (1 − W_i)(Y_i − ȳ₀)/(1 − p̂), whose mean is exactly τ̂.
+    With ``clusters`` the SE is the cluster-robust SE of mean(ψ) (Liang & Zeger 1986).
     """
     y, w = _check_yw(y, w)
     treated, control = y[w == 1], y[w == 0]
@@ -52,10 +53,12 @@ def naive(y: np.ndarray, w: np.ndarray) -> Estimate:
     se = np.sqrt(treated.var(ddof=1) / treated.size + control.var(ddof=1) / control.size)
     p = treated.size / y.size
     scores = (m1 - m0) + w * (y - m1) / p - (1 - w) * (y - m0) / (1 - p)
+    if clusters is not None:
+        return Estimate.from_scores("naive", scores, clusters=clusters)
     return Estimate.from_value("naive", m1 - m0, se, scores=scores)
 
 
-def regression_adjusted(X: np.ndarray, y: np.ndarray, w: np.ndarray) -> Estimate:
+def regression_adjusted(X: np.ndarray, y: np.ndarray, w: np.ndarray, clusters: Any = None) -> Estimate:
     """Lin (2013) regression adjustment: OLS of Y on 1, W, X_c, W·X_c (X_c = X − x̄); τ̂ = coefficient of W.
 
     SE: HC2 sandwich (Imbens & Kolesár 2016), V = (Z'Z)⁻¹ Σ_i z_i z_i' r_i²/(1 − h_ii) (Z'Z)⁻¹, with the
@@ -63,7 +66,9 @@ def regression_adjusted(X: np.ndarray, y: np.ndarray, w: np.ndarray) -> Estimate
     covariates and columns linearly dependent on earlier ones (order: 1, W, X_c, W·X_c) are dropped; units
     with leverage 1 (zero residual) add 0 to the HC2 sum.
     Scores: ψ_i = μ̂₁(x_i) − μ̂₀(x_i) + W_i r_i/p̂ − (1 − W_i) r_i/(1 − p̂), with p̂ = n₁/n and r the OLS
-    residual; the normal equations make mean(ψ) = τ̂ exactly.
+    residual; the normal equations make mean(ψ) = τ̂ exactly.  With ``clusters`` the SE is the
+    cluster-robust SE of mean(ψ) from cluster sums of ψ (the CR0-type sandwich of Liang & Zeger 1986 with
+    the G/(G − 1) correction; Cameron & Miller 2015) in place of HC2.
     """
     y, w = _check_yw(y, w)
     X = finite_matrix("covariates", X, y.size)
@@ -82,10 +87,12 @@ def regression_adjusted(X: np.ndarray, y: np.ndarray, w: np.ndarray) -> Estimate
     share = w.mean()
     scores = beta[1] + effect_x + w * resid / share - (1 - w) * resid / (1 - share)
     note = _regression_note(n_constant, 2 + 2 * p - keep.size, n_leverage_one)
+    if clusters is not None:
+        return Estimate.from_scores("regression", scores, note=note, clusters=clusters)
     return Estimate.from_value("regression", beta[1], np.sqrt(variance), scores=scores, note=note)
 
 
-def ipw_hajek(y: np.ndarray, w: np.ndarray, e: np.ndarray) -> Estimate:
+def ipw_hajek(y: np.ndarray, w: np.ndarray, e: np.ndarray, clusters: Any = None) -> Estimate:
     """Hájek (normalised) inverse-probability-weighted ATE (Horvitz & Thompson 1952 weights, normalised per arm).
 
     τ̂ = μ̂₁ − μ̂₀ with μ̂₁ = Σ W Y/e ÷ Σ W/e and μ̂₀ = Σ (1−W) Y/(1−e) ÷ Σ (1−W)/(1−e).  Scores (linearisation
@@ -94,23 +101,25 @@ def ipw_hajek(y: np.ndarray, w: np.ndarray, e: np.ndarray) -> Estimate:
     """
     y, w = _check_yw(y, w)
     e = _check_e(e, y.size)
-    return _weighted_contrast("ipw", y, w / e, (1 - w) / (1 - e), "ATE")
+    return _weighted_contrast("ipw", y, w / e, (1 - w) / (1 - e), "ATE", clusters)
 
 
-def aipw(y: np.ndarray, w: np.ndarray, e: np.ndarray, mu0: np.ndarray, mu1: np.ndarray) -> Estimate:
+def aipw(y: np.ndarray, w: np.ndarray, e: np.ndarray, mu0: np.ndarray, mu1: np.ndarray,
+         clusters: Any = None) -> Estimate:
     """Cross-fitted AIPW (Robins, Rotnitzky & Zhao 1994; Chernozhukov et al. 2018): τ̂ = mean(Γ), SE sd(Γ)/√n.
 
     Γ_i = μ̂₁(x_i) − μ̂₀(x_i) + W_i (Y_i − μ̂₁(x_i))/e_i − (1 − W_i)(Y_i − μ̂₀(x_i))/(1 − e_i),
-    computed by :func:`siteproof.core.scores.aipw_scores`.
+    computed by :func:`siteproof.core.scores.aipw_scores`.  With ``clusters`` the SE is the cluster-robust
+    SE of mean(Γ) (:func:`siteproof.core.clusters.cluster_mean_se`; Liang & Zeger 1986).
     """
     y, w = _check_yw(y, w)
     e = _check_e(e, y.size)
     mu0 = unit_vector("mu0", mu0, y.size)
     mu1 = unit_vector("mu1", mu1, y.size)
-    return Estimate.from_scores("aipw", aipw_scores(y, w, e, mu0, mu1))
+    return Estimate.from_scores("aipw", aipw_scores(y, w, e, mu0, mu1), clusters=clusters)
 
 
-def overlap_weighted(y: np.ndarray, w: np.ndarray, e: np.ndarray) -> Estimate:
+def overlap_weighted(y: np.ndarray, w: np.ndarray, e: np.ndarray, clusters: Any = None) -> Estimate:
     """Overlap-weighted effect (Li, Morgan & Zaslavsky 2018): treated weighted by 1 − e, controls by e.
 
     τ̂_O = Σ W(1−e)Y ÷ Σ W(1−e) − Σ (1−W)eY ÷ Σ (1−W)e estimates the average effect in the population
@@ -119,15 +128,17 @@ def overlap_weighted(y: np.ndarray, w: np.ndarray, e: np.ndarray) -> Estimate:
     """
     y, w = _check_yw(y, w)
     e = _check_e(e, y.size)
-    return _weighted_contrast("overlap", y, w * (1 - e), (1 - w) * e, OVERLAP_ESTIMAND)
+    return _weighted_contrast("overlap", y, w * (1 - e), (1 - w) * e, OVERLAP_ESTIMAND, clusters)
 
 
-def _weighted_contrast(name: str, y: np.ndarray, a1: np.ndarray, a0: np.ndarray, estimand: str) -> Estimate:
-    """Difference of two normalised weighted means, with linearised scores (mean(ψ) = estimate)."""
+def _weighted_contrast(name: str, y: np.ndarray, a1: np.ndarray, a0: np.ndarray, estimand: str,
+                       clusters: Any = None) -> Estimate:
+    """Difference of two normalised weighted means, with linearised scores (mean(ψ) = estimate); the SE is
+    cluster-robust with ``clusters``."""
     m1 = float(a1 @ y / a1.sum())
     m0 = float(a0 @ y / a0.sum())
     scores = (m1 - m0) + a1 * (y - m1) / a1.mean() - a0 * (y - m0) / a0.mean()
-    return Estimate.from_scores(name, scores, estimand=estimand)
+    return Estimate.from_scores(name, scores, estimand=estimand, clusters=clusters)
 
 
 # ------------------------------------------------------------------------------------------ Lin regression

@@ -31,7 +31,7 @@ from .evaluation import (
     _score_matrix,
     _sorted_rows,
     _tie_average,
-    half_samples,
+    half_sample_batches,
 )
 
 
@@ -81,13 +81,14 @@ def _check(kinds: Sequence[str], n: int, n_boot: int, grid: int) -> None:
 
 def shared_rank_metrics(
     taus: Mapping[str, Any], gamma: Any, *, kinds: Sequence[str] = RANK_KINDS, n_boot: int = 200, seed: int = 0,
-    grid: int = 100,
+    grid: int = 100, clusters: Any = None,
 ) -> dict[str, dict[str, RankResult]]:
     """``{model: {kind: RankResult}}`` for every τ̂ in ``taus`` and every kind, from one pass over the
     half-samples (the draws of ``half_samples(n, n_boot, seed)``, shared by all models and kinds).
 
     Equal, number for number, to ``rank_metric(taus[model], gamma, kind=kind, n_boot=n_boot, seed=seed,
-    grid=grid)`` for each pair.
+    grid=grid, clusters=clusters)`` for each pair.  With ``clusters`` the half-samples keep clusters whole
+    (:func:`siteproof.blind.evaluation.half_sample_batches`).
     """
     if not taus:
         return {}
@@ -95,13 +96,16 @@ def shared_rank_metrics(
     _check(kinds, n, n_boot, grid)
     scores, one_column = _score_matrix(gamma, n)
     rankings = {model: _ranking(unit_vector(f"tau of {model}", tau, n), scores) for model, tau in taus.items()}
-    m = n // 2
-    full_rows, half_cuts = np.arange(n)[None, :], _grid_cuts(m, grid)
+    full_rows = np.arange(n)[None, :]
     omega_full = {kind: _rank_weights(n, kind) for kind in kinds}
-    omega_half = {kind: _rank_weights(m, kind) for kind in kinds}
+    halves: dict[int, tuple[np.ndarray, dict[str, np.ndarray]]] = {}
     theta: dict[tuple[str, str], list[np.ndarray]] = {(mod, kind): [] for mod in rankings for kind in kinds}
     tocs: dict[str, list[np.ndarray]] = {mod: [] for mod in rankings}
-    for units in half_samples(n, n_boot, seed):
+    for units in half_sample_batches(n, n_boot, seed, clusters):
+        m = units.shape[1]
+        if m not in halves:
+            halves[m] = (_grid_cuts(m, grid), {kind: _rank_weights(m, kind) for kind in kinds})
+        half_cuts, omega_half = halves[m]
         for model, r in rankings.items():
             g = _gathered(r, _sorted_rows(units, r.position, n))
             for kind in kinds:

@@ -21,6 +21,7 @@ from typing import Any, Iterator
 import numpy as np
 from scipy import stats
 
+from ..core.clusters import cluster_codes, cluster_half_samples
 from ..core.checks import finite_vector, in_unit_interval, unit_vector, unit_vector_or_scalar
 from ..core.errors import SiteproofError
 from ..core.estimates import Z95, Estimate
@@ -90,22 +91,23 @@ class RLossResult:
         }
 
 
-def r_loss_comparison(y: Any, w: Any, e: Any, m: Any, tau: Any, tau_ref: Any) -> RLossResult:
+def r_loss_comparison(y: Any, w: Any, e: Any, m: Any, tau: Any, tau_ref: Any, clusters: Any = None) -> RLossResult:
     """Compare the R-loss of ``tau`` with that of ``tau_ref`` (e.g. the constant model) on the same units.
 
     Per-unit differences d_i = ℓ_i(τ) − ℓ_i(τ_ref) = (W_i − e_i)(τ_i − τ_ref,i)·[(W_i − e_i)(τ_i + τ_ref,i)
     − 2(Y_i − m_i)]: the common term (Y − m)² cancels, so the paired SE sd(d)/√n is far smaller than
     either loss's own SE.  With the true propensity, E[d_i | X, S] = e(1−e)[(τ_i − τ(X,S))² −
     (τ_ref,i − τ(X,S))²] for any m that is a function of x only, so a negative mean difference means τ̂ is
-    closer to the true effect than the reference, weighted by e(1−e) (Nie & Wager 2021).
+    closer to the true effect than the reference, weighted by e(1−e) (Nie & Wager 2021).  With ``clusters``
+    every SE is the cluster-robust SE of a mean (Liang & Zeger 1986).
     """
     loss = r_loss_units(y, w, e, m, tau)
     loss_ref = r_loss_units(y, w, e, m, tau_ref)
-    diff = Estimate.from_scores("r_loss_difference", loss - loss_ref, estimand="R-loss difference")
+    diff = Estimate.from_scores("r_loss_difference", loss - loss_ref, estimand="R-loss difference", clusters=clusters)
     t = diff.z if diff.se > 0 else float("nan")
     return RLossResult(
-        loss=Estimate.from_scores("r_loss", loss, estimand="R-loss"),
-        loss_ref=Estimate.from_scores("r_loss_ref", loss_ref, estimand="R-loss"),
+        loss=Estimate.from_scores("r_loss", loss, estimand="R-loss", clusters=clusters),
+        loss_ref=Estimate.from_scores("r_loss_ref", loss_ref, estimand="R-loss", clusters=clusters),
         difference=diff,
         t=t,
         p_below_zero=float(stats.norm.cdf(t)) if np.isfinite(t) else float("nan"),
@@ -170,26 +172,52 @@ class GatesResult:
         }
 
 
-def _group_estimates(tau: np.ndarray, gamma: np.ndarray, k: int) -> list[GroupEstimate]:
+def _group_estimates(tau: np.ndarray, gamma: np.ndarray, k: int, clusters: np.ndarray | None = None) -> list[GroupEstimate]:
     ids = quantile_groups(tau, k)
     out = []
     for g in range(k):
         sel = ids == g
         t = tau[sel]
         rng = (float(t.min()), float(t.max())) if t.size else (float("nan"), float("nan"))
-        est = Estimate.from_scores(f"group_{g}", gamma[sel], estimand="GATE")
+        est = Estimate.from_scores(f"group_{g}", gamma[sel], estimand="GATE",
+                                   clusters=None if clusters is None else clusters[sel])
         out.append(GroupEstimate(g, int(sel.sum()), rng, float(t.mean()) if t.size else float("nan"), est))
     return out
 
 
-def _difference_of_groups(name: str, high: GroupEstimate, low: GroupEstimate) -> Estimate:
-    """high − low with SE √(se_high² + se_low²) (disjoint units, independent scores)."""
+def _difference_of_groups(name: str, high: GroupEstimate, low: GroupEstimate, ids: np.ndarray | None = None,
+                          gamma: np.ndarray | None = None, clusters: np.ndarray | None = None) -> Estimate:
+    """high − low with SE √(se_high² + se_low²) (disjoint units, independent scores).
+
+    With ``clusters`` the two groups may share clusters, so their means are correlated: the SE is then the
+    cluster-robust SE of Γ̄_h − Γ̄_l written as a mean of φ_i = n·(1[i∈h]/n_h − 1[i∈l]/n_l)·(Γ_i − Γ̄_{g(i)})
+    over all units, i.e. from cluster sums of the two groups' deviations (Liang & Zeger 1986).
+    """
     est = high.estimate.estimate - low.estimate.estimate
-    se = float(np.hypot(high.estimate.se, low.estimate.se))
+    if clusters is None:
+        se = float(np.hypot(high.estimate.se, low.estimate.se))
+    else:
+        se = _paired_group_se(ids, gamma, clusters, high, low)
     return Estimate.from_value(name, est, se, estimand="GATE difference")
 
 
-def gates(tau: Any, gamma: Any, k: int = 5) -> GatesResult:
+def _paired_group_se(ids: np.ndarray, gamma: np.ndarray, clusters: np.ndarray, high: GroupEstimate,
+                     low: GroupEstimate) -> float:
+    """Cluster-robust SE of Γ̄_h − Γ̄_l: V = G/(G − 1) Σ_g (Σ_{i∈g} a_i (Γ_i − Γ̄_{g(i)}))², a = ±1/n_group."""
+    n = gamma.size
+    phi = np.zeros(n)
+    for grp, sign in ((high, 1.0), (low, -1.0)):
+        sel = ids == grp.group
+        phi[sel] = sign * n * (gamma[sel] - grp.estimate.estimate) / max(int(sel.sum()), 1)
+    codes, labels = cluster_codes(clusters, n)
+    g = labels.size
+    if g < 2:
+        return float("nan")
+    totals = np.bincount(codes, weights=phi, minlength=g)
+    return float(np.sqrt(g / (g - 1) * np.sum(totals ** 2)) / n)
+
+
+def gates(tau: Any, gamma: Any, k: int = 5, clusters: Any = None) -> GatesResult:
     """Sorted group average treatment effects (Chernozhukov, Demirer, Duflo & Fernández-Val).
 
     Units are split into k groups by quantiles of τ̂ (:func:`quantile_groups`); the effect in group g is
@@ -197,17 +225,22 @@ def gates(tau: Any, gamma: Any, k: int = 5) -> GatesResult:
     ``high_low`` = the same for the median split (k = 2), each with SE √(se_high² + se_low²).  Because τ̂
     is out-of-fold and Γ is built from nuisances not fit on the unit, Γ̄_g is unbiased for the group's
     average effect given the groups.  Pass Γ_a − Γ_b to get paired differences of two scorings.
+    With ``clusters`` each group SE is cluster-robust over the group's units and the differences use the
+    cluster sums of both groups together (see :func:`_difference_of_groups`).
     """
     tau = unit_vector("tau", tau)
     gamma = unit_vector("gamma", gamma, tau.size)
-    groups = _group_estimates(tau, gamma, k)
-    halves = _group_estimates(tau, gamma, 2)
+    codes = None if clusters is None else cluster_codes(clusters, tau.size)[0]
+    groups = _group_estimates(tau, gamma, k, codes)
+    halves = _group_estimates(tau, gamma, 2, codes)
+    ids_k = quantile_groups(tau, k) if codes is not None else None
+    ids_2 = quantile_groups(tau, 2) if codes is not None else None
     return GatesResult(
         k=k,
         groups=groups,
-        high_minus_low=_difference_of_groups("high_minus_low", groups[-1], groups[0]),
+        high_minus_low=_difference_of_groups("high_minus_low", groups[-1], groups[0], ids_k, gamma, codes),
         halves=halves,
-        high_low=_difference_of_groups("high_low", halves[1], halves[0]),
+        high_low=_difference_of_groups("high_low", halves[1], halves[0], ids_2, gamma, codes),
     )
 
 
@@ -228,6 +261,7 @@ class BlpResult:
     names: tuple[str, ...]
     coef: tuple[float, ...]
     cov: tuple[tuple[float, ...], ...]
+    covariance: str = "HC2"
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -235,15 +269,20 @@ class BlpResult:
             "beta2": self.beta2.to_dict(),
             "p_beta2_positive": self.p_beta2_positive,
             "coefficients": dict(zip(self.names, self.coef)),
-            "covariance": "HC2",
+            "covariance": self.covariance,
         }
 
 
-def _hc2_wls(design: np.ndarray, y: np.ndarray, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _hc2_wls(design: np.ndarray, y: np.ndarray, weights: np.ndarray,
+             clusters: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Weighted least squares with the HC2 sandwich, computed on the whitened data √v·X, √v·Y.
 
     β = (X̃'X̃)⁻¹X̃'Ỹ, û = Ỹ − X̃β, h_i = x̃_i'(X̃'X̃)⁻¹x̃_i,
     V = (X̃'X̃)⁻¹ [Σ x̃_i x̃_i' û_i² / (1 − h_i)] (X̃'X̃)⁻¹ (MacKinnon & White 1985; Imbens & Kolesár 2016).
+
+    With ``clusters`` (codes 0..G−1) the meat is built from cluster sums of the score contributions
+    s_g = Σ_{i∈g} x̃_i û_i: V = G/(G − 1) (X̃'X̃)⁻¹ [Σ_g s_g s_g'] (X̃'X̃)⁻¹, the cluster-robust sandwich
+    (Liang & Zeger 1986; CR1-type small-sample factor G/(G − 1), Cameron & Miller 2015).
     """
     root = np.sqrt(weights)
     xw = design * root[:, None]
@@ -251,12 +290,17 @@ def _hc2_wls(design: np.ndarray, y: np.ndarray, weights: np.ndarray) -> tuple[np
     bread = np.linalg.inv(xw.T @ xw)
     beta = bread @ (xw.T @ yw)
     resid = yw - xw @ beta
+    if clusters is not None:
+        g = int(clusters.max()) + 1
+        sums = np.stack([np.bincount(clusters, weights=xw[:, j] * resid, minlength=g) for j in range(xw.shape[1])], axis=1)
+        factor = g / (g - 1) if g > 1 else float("nan")
+        return beta, factor * (bread @ (sums.T @ sums) @ bread)
     leverage = np.einsum("ij,jk,ik->i", xw, bread, xw)
     meat = (xw * (resid**2 / (1.0 - leverage))[:, None]).T @ xw
     return beta, bread @ meat @ bread
 
 
-def blp(y: Any, w: Any, e: Any, tau: Any, baseline: Any) -> BlpResult:
+def blp(y: Any, w: Any, e: Any, tau: Any, baseline: Any, clusters: Any = None) -> BlpResult:
     """BLP calibration of τ̂ (Chernozhukov, Demirer, Duflo & Fernández-Val, generic ML inference).
 
     Weighted least squares of Y on the regressors [1, B, (W − e), (W − e)(τ̂ − τ̄)] with weights
@@ -264,7 +308,7 @@ def blp(y: Any, w: Any, e: Any, tau: Any, baseline: Any) -> BlpResult:
     The coefficient on (W − e) is β₁ (the average effect) and on (W − e)(τ̂ − τ̄) is β₂: β₂ = 1 when τ̂
     is the true CATE, 0 when it carries no information about heterogeneity.  With e the true assignment
     probability, β₁ and β₂ are identified whatever B is (W − e is v-orthogonal to any function of x).
-    SEs: HC2.  A constant τ̂ (or B) is collinear with the intercept; its column is dropped and β₂ is NaN.
+    SEs: HC2, or with ``clusters`` the cluster-robust sandwich of :func:`_hc2_wls`.  A constant τ̂ (or B) is collinear with the intercept; its column is dropped and β₂ is NaN.
     """
     y, w, e = _trial_arrays(y, w, e)
     n = y.size
@@ -277,7 +321,8 @@ def blp(y: Any, w: Any, e: Any, tau: Any, baseline: Any) -> BlpResult:
     if n <= design.shape[1] or np.linalg.matrix_rank(design) < design.shape[1]:
         raise SiteproofError("the BLP regression is singular (too few units or collinear regressors)",
                              "use more units or check that both arms are present")
-    beta, cov = _hc2_wls(design, y, 1.0 / (e * (1.0 - e)))
+    codes = None if clusters is None else cluster_codes(clusters, n)[0]
+    beta, cov = _hc2_wls(design, y, 1.0 / (e * (1.0 - e)), codes)
     se = np.sqrt(np.diag(cov))
 
     def coefficient(name: str) -> Estimate:
@@ -295,6 +340,7 @@ def blp(y: Any, w: Any, e: Any, tau: Any, baseline: Any) -> BlpResult:
         names=tuple(keep),
         coef=tuple(float(b) for b in beta),
         cov=tuple(tuple(float(c) for c in row) for row in cov),
+        covariance="HC2" if clusters is None else "cluster",
     )
 
 
@@ -405,6 +451,18 @@ def half_samples(n: int, n_boot: int, seed: int) -> Iterator[np.ndarray]:
         yield units
 
 
+def half_sample_batches(n: int, n_boot: int, seed: int, clusters: Any = None) -> Iterator[np.ndarray]:
+    """Half-sample draws as arrays (b, m): :func:`half_samples` without clusters; with ``clusters`` one
+    replicate at a time, the units of ⌊G/2⌋ whole clusters (:func:`siteproof.core.clusters.cluster_half_samples`),
+    so m varies with the cluster sizes.  The SD of a mean over G/2 of G equal clusters is the cluster-robust
+    SE (finite-population correction, docs/methods-clusters.md §3)."""
+    if clusters is None:
+        yield from half_samples(n, n_boot, seed)
+        return
+    for units in cluster_half_samples(clusters, n_boot, seed):
+        yield units[None, :]
+
+
 def _sorted_rows(units: np.ndarray, position: np.ndarray, n: int) -> np.ndarray:
     """Map half-sample unit indices (B, m) to their positions in τ̂ order, ascending within each row."""
     b, m = units.shape
@@ -414,7 +472,8 @@ def _sorted_rows(units: np.ndarray, position: np.ndarray, n: int) -> np.ndarray:
     return np.flatnonzero(flat).reshape(b, m) - offsets
 
 
-def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200, seed: int = 0, grid: int = 100) -> RankResult:
+def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200, seed: int = 0, grid: int = 100,
+                clusters: Any = None) -> RankResult:
     """AUTOC or Qini coefficient of the ranking by τ̂, with half-sample bootstrap SEs
     (Yadlowsky, Fleming, Shah, Brunskill & Wager, rank-weighted average treatment effects).
 
@@ -430,6 +489,7 @@ def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200,
     m = n/2 (finite-population correction of sampling without replacement), which is the full-sample
     variance; so SD(replicates) is the SE.  ``gamma`` of shape (n, c) gives one result per column from the
     same half-samples; ``boot`` keeps the replicates for paired differences (:meth:`RankResult.difference`).
+    With ``clusters`` the half-samples keep clusters whole (:func:`half_sample_batches`).
     Columns built from different propensities (ê vs a known rate) with the μ̂ that also produced τ̂ differ by
     a product of nuisance errors that the ranking selects on, so their paired difference is biased even though
     θ is computed identically for both (docs/methods-heterogeneity.md, "Blind vs design AUTOC").
@@ -452,11 +512,13 @@ def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200,
     position[order] = np.arange(n)
 
     theta, toc = _rank_stats(sorted_scores_t, sorted_blocks, np.arange(n)[None, :], _rank_weights(n, kind), _grid_cuts(n, grid))
-    m = n // 2
-    omega_m, cuts_m = _rank_weights(m, kind), _grid_cuts(m, grid)
+    weights: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     boot_theta, boot_toc = [], []
-    for units in half_samples(n, n_boot, seed):
-        th, tc = _rank_stats(sorted_scores_t, sorted_blocks, _sorted_rows(units, position, n), omega_m, cuts_m)
+    for units in half_sample_batches(n, n_boot, seed, clusters):
+        m = units.shape[1]
+        if m not in weights:
+            weights[m] = (_rank_weights(m, kind), _grid_cuts(m, grid))
+        th, tc = _rank_stats(sorted_scores_t, sorted_blocks, _sorted_rows(units, position, n), *weights[m])
         boot_theta.append(th)
         boot_toc.append(tc)
     boot = np.concatenate(boot_theta, axis=0)
@@ -472,6 +534,20 @@ def rank_metric(tau: Any, gamma: Any, *, kind: str = "autoc", n_boot: int = 200,
         seed=seed,
         one_column=one_column,
     )
+
+
+def _cluster_curve_variance(g1: np.ndarray, codes: np.ndarray, share: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Cluster-robust variance of gain_k = mean(1[i among top k]·Γ_i) at the boundaries k bracketing the grid
+    (other boundaries are not read by the interpolation and are left at 0)."""
+    n, g = g1.size, int(codes.max()) + 1
+    var = np.zeros(n + 1)
+    hi = np.clip(np.searchsorted(share, x, side="left"), 0, n)
+    for k in np.unique(np.concatenate([hi, np.maximum(hi - 1, 0)])):
+        z = np.zeros(n)
+        z[:k] = g1[:k]
+        totals = np.bincount(codes, weights=z - z.mean(), minlength=g)
+        var[k] = g / (g - 1) * np.sum(totals ** 2) / n ** 2 if g > 1 else float("nan")
+    return var
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -503,7 +579,7 @@ def _block_mean(values: np.ndarray, first: np.ndarray) -> np.ndarray:
     return np.repeat(np.add.reduceat(values, first) / sizes, sizes)
 
 
-def cost_curve(tau: Any, gamma: Any, cost: Any, grid: int = 100) -> CostCurveResult:
+def cost_curve(tau: Any, gamma: Any, cost: Any, grid: int = 100, clusters: Any = None) -> CostCurveResult:
     """Cost-aware gain curve: treat units in decreasing order of benefit per unit cost τ̂_i / c_i.
 
     After k units, x_k = Σ_{j≤k} c_(j) / Σ_j c_j and gain_k = (1/n) Σ_{j≤k} Γ_(j) = mean of Z_i = 1[i among
@@ -511,6 +587,8 @@ def cost_curve(tau: Any, gamma: Any, cost: Any, grid: int = 100) -> CostCurveRes
     x = 0, 1/grid, ..., 1 by linear interpolation between unit boundaries (the marginal unit funded in
     part).  Ties in τ̂/c are handled like :func:`rank_metric`: Γ, Γ² and c are averaged within tied blocks.
     Costs must be positive.  The curve is linear in Γ, so Γ_a − Γ_b gives paired differences.
+    With ``clusters`` the variance at each unit boundary next to a grid point is the cluster-robust
+    G/(G − 1) Σ_g (Σ_{i∈g} (Z_i − gain_k))²/n² (Liang & Zeger 1986), interpolated the same way.
     """
     tau = unit_vector("tau", tau)
     n = tau.size
@@ -530,6 +608,8 @@ def cost_curve(tau: Any, gamma: Any, cost: Any, grid: int = 100) -> CostCurveRes
     gain = np.concatenate([[0.0], np.cumsum(g1)]) / n
     var = np.maximum(np.concatenate([[0.0], np.cumsum(g2)]) / n - gain**2, 0.0) / (n - 1)
     x = np.arange(grid + 1) / grid
+    if clusters is not None:
+        var = _cluster_curve_variance(g1, cluster_codes(clusters, n)[0][order], share, x)
     return CostCurveResult(
         x=x,
         gain=np.interp(x, share, gain),

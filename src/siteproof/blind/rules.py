@@ -114,7 +114,7 @@ class RuleValue:
                 "value": self.value.to_dict(), "gain": self.gain.to_dict()}
 
 
-def rule_value(pi: Any, gamma0: Any, gamma1: Any, cost: Any = None) -> RuleValue:
+def rule_value(pi: Any, gamma0: Any, gamma1: Any, cost: Any = None, clusters: Any = None) -> RuleValue:
     """Value and gain of the assignments π from arm scores Γ₀, Γ₁ (Imai & Li 2023; Athey & Wager 2021).
 
     value: ψ_i = π_i(Γ₁_i − c_i) + (1 − π_i)Γ₀_i, V̂ = mean(ψ), SE = sd(ψ)/√n.
@@ -122,7 +122,8 @@ def rule_value(pi: Any, gamma0: Any, gamma1: Any, cost: Any = None) -> RuleValue
            = V̂ − [q̂·mean(Γ₁ − c) + (1 − q̂)·mean(Γ₀)], SE = sd(φ)/√n (accounts for the estimated share q̂).
 
     Both treat the rule as a fixed function of x (it was fit out-of-fold or elsewhere); for a budget rule this
-    means conditioning on its realised cutoff (see docs/methods-rules.md).
+    means conditioning on its realised cutoff (see docs/methods-rules.md).  With ``clusters`` both SEs are
+    the cluster-robust SEs of a mean (Liang & Zeger 1986).
     """
     g0, g1 = _arm_pair(gamma0, gamma1)
     n = g0.size
@@ -135,9 +136,11 @@ def rule_value(pi: Any, gamma0: Any, gamma1: Any, cost: Any = None) -> RuleValue
     value_scores = p * net1 + (1.0 - p) * g0
     gain_scores = (p - q_hat) * (diff - diff.mean())
     return RuleValue(
-        value=Estimate.from_scores("rule value", value_scores, estimand="value of the rule (mean outcome net of cost)"),
+        value=Estimate.from_scores("rule value", value_scores, estimand="value of the rule (mean outcome net of cost)",
+                                    clusters=clusters),
         gain=Estimate.from_scores("rule gain", gain_scores,
-                                  estimand="gain over random allocation with the same treated share"),
+                                  estimand="gain over random allocation with the same treated share",
+                                  clusters=clusters),
         treated_share=q_hat,
         n=n,
     )
