@@ -21,6 +21,13 @@ alone is honest:
   ATE's error, as Neyman's (1923) variance is, and tighter the better τ̂ tracks the unit effects. Whether the
   submitted 95 % CI covers Γ̄ is reported beside it.
 
+**Clusters.** When the key records clusters (a clustered study; the holdout then holds out whole clusters),
+units of one cluster are correlated and every SE is cluster-robust: the means (design ATE, ATE error, rule
+gain) use cluster sums of the per-unit scores, V = G/(G − 1)·Σ_g (Σ_{i∈g}(ψ_i − ψ̄))²/n² (Liang & Zeger 1986);
+AUTOC, Qini and BLP β₂ take the SD of their replicates on half-samples of whole clusters
+(``core.clusters.cluster_half_samples``), and the tie comparisons use the same cluster half-samples. With one
+unit per cluster the cluster sum formula is the unit formula sd(ψ)/√n.
+
 Only the graded units count: with a holdout share (the default) the held-out ones, whose outcome and treatment
 were never published, so a prediction built from published outcomes gains nothing; without one every unit is
 graded and the leaderboard says the grading is in-sample. An invalid submission is listed without a rank, with
@@ -41,6 +48,7 @@ import pandas as pd
 
 from ..blind.evaluation import blp, half_samples, rank_metric
 from ..blind.rules import rule_value
+from ..core.clusters import cluster_half_samples, cluster_mean_se
 from ..core.errors import SiteproofError
 from ..core.estimates import Estimate
 from ..core.scores import arm_scores
@@ -63,10 +71,11 @@ class _Grader:
     gamma1: np.ndarray
     cost: np.ndarray | None
     site: np.ndarray
-    halves: np.ndarray
+    halves: list[np.ndarray]
     design: Estimate
     n_boot: int
     seed: int
+    clusters: np.ndarray | None = None
 
     @classmethod
     def from_key(cls, key: BenchmarkKey, n_boot: int, seed: int) -> "_Grader":
@@ -74,12 +83,15 @@ class _Grader:
         u, g = key.units, key.graded
         y, w, e, mu0, mu1 = (u[c].to_numpy(dtype=float)[g] for c in ("y", "w", "rate", "mu0", "mu1"))
         gamma0, gamma1 = arm_scores(y, w, e, mu0, mu1)
-        design = Estimate.from_scores("design_ate", gamma1 - gamma0,
+        clusters = None if key.clusters is None else key.clusters[g]
+        design = Estimate.from_scores("design_ate", gamma1 - gamma0, clusters=clusters,
                                       estimand="ATE of the graded units (AIPW with the known rates)")
         cost = u["cost"].to_numpy(dtype=float)[g] if u["cost"].notna().all() else None
+        halves = (_halves(int(g.sum()), n_boot, seed) if clusters is None
+                  else list(cluster_half_samples(clusters, n_boot, seed)))
         return cls(graded=g, y=y, w=w, e=e, mu0=mu0, gamma0=gamma0, gamma1=gamma1, cost=cost,
-                   site=u["site"].to_numpy(dtype=object)[g], halves=_halves(int(g.sum()), n_boot, seed),
-                   design=design, n_boot=n_boot, seed=seed)
+                   site=u["site"].to_numpy(dtype=object)[g], halves=halves,
+                   design=design, n_boot=n_boot, seed=seed, clusters=clusters)
 
     @property
     def gamma(self) -> np.ndarray:
@@ -92,14 +104,22 @@ def _stratum(units: pd.DataFrame) -> np.ndarray | None:
     return units["stratum"].to_numpy(dtype=object) if units["stratum"].notna().any() else None
 
 
-def _halves(n: int, n_boot: int, seed: int) -> np.ndarray:
-    """(n_boot, n//2) unit indices of the half-samples: the draws of ``evaluation.half_samples``."""
-    return np.concatenate(list(half_samples(n, n_boot, seed)), axis=0)
+def _halves(n: int, n_boot: int, seed: int) -> list[np.ndarray]:
+    """Unit indices of the n_boot half-samples of n//2 units: the draws of ``evaluation.half_samples``."""
+    return list(np.concatenate(list(half_samples(n, n_boot, seed)), axis=0))
 
 
-def _half_means(halves: np.ndarray, scores: np.ndarray) -> np.ndarray:
+def _half_means(halves: list[np.ndarray], scores: np.ndarray) -> np.ndarray:
     """Replicate of a mean of per-unit scores on each half-sample."""
-    return scores[halves].mean(axis=1)
+    return np.array([scores[half].mean() for half in halves])
+
+
+def _cluster_se(estimate: Estimate, scores: np.ndarray, clusters: np.ndarray | None) -> Estimate:
+    """``estimate`` with the cluster-robust SE of the mean of ``scores`` (unchanged without clusters)."""
+    if clusters is None:
+        return estimate
+    return Estimate.from_value(estimate.name, estimate.estimate, cluster_mean_se(scores, clusters),
+                               estimand=estimate.estimand, scores=scores, note=estimate.note)
 
 
 def grade_submissions(
@@ -166,7 +186,8 @@ def _grade(sub: Submission, grader: _Grader, reveal: bool, rank_by: str) -> Grad
     treated_share = None
     if sub.treat is not None:
         value = rule_value(sub.treat[grader.graded], grader.gamma0, grader.gamma1, grader.cost)
-        metrics["rule_gain"] = replace(value.gain, name="rule_gain")
+        metrics["rule_gain"] = _cluster_se(replace(value.gain, name="rule_gain"), np.asarray(value.gain.scores),
+                                           grader.clusters)
         replicates["rule_gain"] = _half_means(grader.halves, np.asarray(value.gain.scores))
         treated_share = value.treated_share
     covers = None
@@ -185,7 +206,8 @@ def _ate_error(ate: float, tau: np.ndarray | None, grader: _Grader) -> tuple[Est
     d = ate - grader.gamma
     if tau is not None:
         d = d + (tau - tau.mean())
-    error = Estimate.from_scores("ate_error", d, estimand="submitted ATE − design ATE of the graded units")
+    error = Estimate.from_scores("ate_error", d, clusters=grader.clusters,
+                                 estimand="submitted ATE − design ATE of the graded units")
     return error, _half_means(grader.halves, d)
 
 
@@ -201,7 +223,26 @@ def _tau_metrics(
         result = rank_metric(tau, grader.gamma, kind=kind, n_boot=grader.n_boot, seed=grader.seed)
         metrics[kind] = replace(result.estimate_of(0), name=kind)
         replicates[kind] = result.boot[:, 0]
-    metrics["blp_beta2"], replicates["blp_beta2"] = _blp_beta2(tau, grader, beta2_replicates)
+        if grader.clusters is not None:
+            replicates[kind] = np.array([rank_metric(tau[h], grader.gamma[h], kind=kind, n_boot=2,
+                                                     seed=grader.seed).estimate_of(0).estimate
+                                         for h in grader.halves])
+            metrics[kind] = _from_replicates(metrics[kind], replicates[kind])
+    metrics["blp_beta2"], replicates["blp_beta2"] = _blp_beta2(tau, grader, beta2_replicates or
+                                                               grader.clusters is not None)
+    if grader.clusters is not None:
+        metrics["blp_beta2"] = _from_replicates(metrics["blp_beta2"], replicates["blp_beta2"])
+
+
+def _from_replicates(estimate: Estimate, reps: np.ndarray) -> Estimate:
+    """``estimate`` with SE = SD of its cluster half-sample replicates: with h = G/2 of G clusters drawn without
+    replacement a half-sample statistic varies with variance ≈ S²(1/h − 1/G) = S²/G, the full-sample variance
+    (``core.clusters.cluster_half_samples``). NaN replicates (an undefined β₂) are left out."""
+    finite = reps[np.isfinite(reps)]
+    if not np.isfinite(estimate.estimate) or finite.size < 2:
+        return estimate
+    return Estimate.from_value(estimate.name, estimate.estimate, float(np.std(finite, ddof=1)),
+                               estimand=estimate.estimand, scores=estimate.scores, note=estimate.note)
 
 
 def _blp_beta2(tau: np.ndarray, grader: _Grader, with_replicates: bool) -> tuple[Estimate, np.ndarray]:
@@ -210,7 +251,7 @@ def _blp_beta2(tau: np.ndarray, grader: _Grader, with_replicates: bool) -> tuple
     β₂ is undefined (NaN) for a τ̂ without variation, and where the regression is singular.
     """
     full = _beta2(grader.y, grader.w, grader.e, tau, grader.mu0)
-    reps = np.full(grader.halves.shape[0], np.nan)
+    reps = np.full(len(grader.halves), np.nan)
     if with_replicates and np.isfinite(full.estimate):
         for b, half in enumerate(grader.halves):
             reps[b] = _beta2(grader.y[half], grader.w[half], grader.e[half], tau[half], grader.mu0[half]).estimate

@@ -2,7 +2,7 @@
 
 ``key/key.json`` holds everything about the benchmark except the per-unit table; ``key/units.csv`` holds, per
 token, the site, known rate, graded flag, outcome, treatment, cost and the cross-fitted outcome models μ̂₀, μ̂₁
-the grader needs; ``key/leak_audit.csv`` the audit table; ``key/secret.txt`` the sealing secret. key.json
+the grader needs, and (for a clustered study) the cluster label of every unit, held out or not; ``key/leak_audit.csv`` the audit table; ``key/secret.txt`` the sealing secret. key.json
 carries the SHA-256 of the three files and a SHA-256 over its own canonical content
 (:mod:`siteproof.benchmark.keycheck`), so any change to the key is detected when it is read.
 """
@@ -56,6 +56,8 @@ def fit_key_units(
         "rate": study.known_rate[units], "graded": graded.astype(int), "y": y, "w": w.astype(int),
         "cost": blind.cost[units] if blind.cost is not None else np.nan, "mu0": mu0, "mu1": mu1,
     })
+    if study.cluster is not None:
+        frame["cluster"] = np.asarray(study.cluster, dtype=object)[units].astype(str)
     return frame, nuis.to_dict()
 
 
@@ -126,6 +128,11 @@ class BenchmarkKey:
     def benchmark_id(self) -> str:
         """The first 12 hex digits of the sealed public file's SHA-256."""
         return str(self.meta["benchmark_id"])
+
+    @property
+    def clusters(self) -> np.ndarray | None:
+        """Cluster label of every unit (public-file order), or None when the benchmark has no clusters."""
+        return self.units["cluster"].to_numpy(dtype=object) if "cluster" in self.units.columns else None
 
     @property
     def graded(self) -> np.ndarray:

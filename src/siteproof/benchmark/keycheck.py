@@ -175,10 +175,16 @@ def check_units(raw: pd.DataFrame, meta: dict[str, Any], where: Path) -> pd.Data
     if (spread > 0).any():
         raise SiteproofError(f"benchmark key {where}: the rate differs between units of one randomization cell",
                              _RESTORE)
-    return pd.DataFrame({
+    units = pd.DataFrame({
         TOKEN: tokens, "row_key": raw["row_key"], "site": raw["site"], "stratum": stratum, "rate": rate,
         "graded": graded.astype(int), "y": y, "w": w.astype(int), "cost": cost, "mu0": mu0, "mu1": mu1,
     })
+    if "cluster" in raw.columns:  # a clustered benchmark: every unit has a label, each cluster in one site
+        _require(where, "cluster", raw["cluster"].str.strip() == "", "a cluster label", raw["cluster"])
+        _require(where, "cluster", raw.groupby("cluster")["site"].transform("nunique") > 1,
+                 "a cluster lying in one site", raw["cluster"])
+        units["cluster"] = raw["cluster"]
+    return units
 
 
 def _numbers(raw: pd.DataFrame, column: str, where: Path, ok: Callable[[np.ndarray], np.ndarray],

@@ -16,6 +16,7 @@ LEADERBOARD_SCHEMA = "siteproof/leaderboard"
 FORMAT_VERSION = 2
 TOKEN = "token"
 PART = "part"
+CLUSTER = "cluster"
 PUBLIC_DATA = "data.csv"
 TASK_SHEET = "task.md"
 TEMPLATE_CSV = "submission_template.csv"

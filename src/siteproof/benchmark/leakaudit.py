@@ -29,6 +29,18 @@ site. The audit asks, for every column on its own, how well the site can be pred
 * **the sealed public file.** After sealing, the published token and part columns and the public row order are
   audited again against the sites (:func:`audit_public`); a flag there stops sealing outright.
 
+* **cluster-level covariates.** With a cluster column, a covariate that is constant within clusters and varies
+  between clusters of one site (a circle leader's experience) is measured at the cluster level. A per-value
+  lookup fitted on units would learn each cluster's value from its own circle-mates and "predict" the site
+  through the cluster, which no student can do (they never see a site). Such a column is audited again with
+  folds of whole clusters; if it does not predict the site then it is reported as ``level = "cluster"``, not
+  as a site leak. A column constant within sites is a copy of the site (``level = "site"``) and audited as usual.
+* **the published cluster token.** The public cluster column holds random per-cluster tokens; a student who
+  wants the sites would try the grouping itself: the cluster sizes, the tokens' sort order and their first
+  characters. :func:`audit_cluster_tokens` scores each of these at the cluster level (one row per cluster,
+  cluster folds). Order and characters come from the secret, so a flag there stops sealing; a flag on sizes
+  is published information of the design itself and is reported with the decision "sizes reported".
+
 A column is flagged when, in any of its views, ℓ ≥ 0.5 or a site is singled out, or when its values or its name
 hold site labels. Sealing stops on a flagged column unless it is acknowledged (kept) or dropped.
 """
@@ -89,6 +101,7 @@ class AuditRow:
     flagged: bool
     reason: str
     decision: str
+    level: str = "unit"
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -135,12 +148,14 @@ def audit_columns(
     drop: Iterable[str] = (),
     seed: int = 0,
     accept_row_order: bool = False,
+    cluster: str | None = None,
 ) -> LeakAudit:
     """Audit ``columns`` of ``frame`` (and its row order) for how well each predicts ``frame[site]``.
 
     ``keep`` lists acknowledged columns (published even when flagged), ``drop`` the columns left out of the
     public file; both are audited all the same so that the saved table explains every decision. A row order
     that predicts the site is unresolved unless ``accept_row_order``. Rows with a missing site are ignored.
+    ``cluster`` names the cluster column: flagged cluster-level columns are re-audited with cluster folds.
     """
     keep, drop = set(keep), set(drop)
     _check_names(frame, site, columns, keep, drop)
@@ -156,6 +171,9 @@ def audit_columns(
         _audit_column(rows[col], col, site_codes, folds, majority, label_pattern, seed, _decision(col, keep, drop))
         for col in columns
     ]
+    if cluster is not None:
+        audited = [_cluster_level(row, rows[row.column], rows[cluster], labels, site_codes, majority, label_pattern,
+                                  seed) for row in audited]
     audited.append(_audit_row_order("(row order)", site_codes, folds, majority, seed, accept_row_order))
     return LeakAudit(audited, len(rows), len(site_names), majority, AUDIT_FOLDS, seed)
 
@@ -176,12 +194,77 @@ def audit_public(public: pd.DataFrame, sites: np.ndarray, columns: Sequence[str]
     return rows
 
 
+def column_level(values: pd.Series, clusters: pd.Series, sites: np.ndarray) -> str:
+    """"site" when constant within every site, "cluster" when constant within every cluster (and not site),
+    else "unit". Missing values count as one value."""
+    text = values.astype(str).where(values.notna(), "\0missing").to_numpy()
+    frame = pd.DataFrame({"v": text, "c": clusters.astype(str).to_numpy(), "s": sites})
+    if (frame.groupby("s")["v"].nunique() <= 1).all():
+        return "site"
+    return "cluster" if (frame.groupby("c")["v"].nunique() <= 1).all() else "unit"
+
+
+def _cluster_level(
+    row: AuditRow, values: pd.Series, clusters: pd.Series, labels: np.ndarray, site_codes: np.ndarray,
+    majority: float, label_pattern: re.Pattern[str] | None, seed: int,
+) -> AuditRow:
+    """A cluster-level column re-audited with whole-cluster folds; reported as cluster-level if then clean."""
+    level = column_level(values, clusters, labels)
+    if level != "cluster":
+        return replace(row, level=level)
+    if not row.flagged:
+        return replace(row, level=level)
+    folds = _cluster_folds(clusters.astype(str).to_numpy(), seed)
+    grouped = _audit_column(values, row.column, site_codes, folds, majority, label_pattern, seed,
+                            row.decision if row.decision != "published" else "unresolved")
+    return replace(grouped, level=level)
+
+
+def _cluster_folds(clusters: np.ndarray, seed: int) -> np.ndarray:
+    """Fold of every row, whole clusters to a fold (clusters shuffled with ``seed``)."""
+    codes, labels = pd.factorize(clusters)
+    cluster_fold = np.empty(labels.size, dtype=np.int64)
+    cluster_fold[np.random.default_rng(seed).permutation(labels.size)] = np.arange(labels.size) % AUDIT_FOLDS
+    return cluster_fold[codes]
+
+
+def audit_cluster_tokens(tokens: np.ndarray, sites: np.ndarray, seed: int) -> list[AuditRow]:
+    """Can the site be recovered from the published cluster tokens? One row per cluster, cluster folds.
+
+    Views: the cluster size (how many public rows share the token), the token's rank in sort order, and its
+    first character. Rank and character come from the secret, so a flag there is unresolved (sealing stops);
+    a size flag is reported ("sizes reported"): the sizes are the design's own and follow from any grouping.
+    """
+    frame = pd.DataFrame({"t": np.asarray(tokens, dtype=str), "s": np.asarray(sites, dtype=str)})
+    per = frame.groupby("t", sort=True).agg(site=("s", "first"), size=("s", "size"))
+    site_codes, _ = pd.factorize(per["site"].to_numpy(), sort=True)
+    g = site_codes.size
+    if g < 2 * AUDIT_FOLDS:
+        return []
+    folds = _folds(g, seed)
+    majority = float(np.bincount(site_codes).max() / g)
+    first = pd.factorize(per.index.str[0])[0].astype(np.int64)
+    views = [("cluster size", per["size"].to_numpy(dtype=float), "sizes reported"),
+             ("cluster token order", np.arange(g, dtype=float), "unresolved"),
+             ("cluster token first character", first, "unresolved")]
+    rows = []
+    for view, feature, on_flag in views:
+        result = _predict_view(view, feature, site_codes, folds, majority, seed)
+        rows.append(AuditRow(
+            column=f"cluster ({view}, public file)", kind="cluster token", identifier_like=False, view=view,
+            accuracy=result.accuracy, majority_share=majority, lift=result.lift,
+            sites_singled_out=result.singled_out, rows_with_site_labels=0, name_has_site_label=False,
+            flagged=result.flagged, reason=_reason(result, majority, 0, False) if result.flagged else "",
+            decision=on_flag if result.flagged else "published", level="cluster"))
+    return rows
+
+
 def require_no_leaks(audit: LeakAudit) -> None:
     """Raise one :class:`SiteproofError` naming every flagged column (or row order) that was not resolved."""
     bad = audit.unresolved
     if not bad:
         return
-    public = [row for row in bad if row.column.endswith("(public file)") or row.column == "(public row order)"]
+    public = [row for row in bad if row.column.endswith("public file)") or row.column == "(public row order)"]
     if public:
         raise SiteproofError(
             "leak audit of the sealed public file: " + "; ".join(f"{r.column} ({r.reason})" for r in public),

@@ -17,6 +17,15 @@ the key's own content. By default 30 % of the units are held out and only they a
 lean on a graded unit's own outcome; ``holdout_share=0`` grades every (published) unit in-sample.
 
 Nothing that names a site (site, stratum, id, known rate) goes into ``public/``.
+
+**Clusters.** When the study declares a cluster column, the holdout is drawn over whole clusters (clusters in a
+secret random order are held out until round(share·n) units are reached), so no cluster has units on both sides
+and grading by cluster sums is honest. The public file carries a ``cluster`` column holding a fresh random token
+per cluster, drawn from the sealing secret like the unit tokens. Students need the grouping (grouped
+cross-fitting, cluster-robust SEs), so the column is kept rather than dropped; the token is not derived from the
+label (no hash, no order): it is a random string, so neither its value nor its sort order says anything about the
+label or the site. What the grouping itself reveals — the cluster sizes — is audited by
+:func:`~siteproof.benchmark.leakaudit.audit_cluster_tokens`. The key records each unit's cluster label.
 """
 
 from __future__ import annotations
@@ -31,6 +40,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ..core.clusters import cluster_codes
 from ..core.errors import SiteproofError, warn
 from ..core.estimates import Estimate
 from ..core.outputs import StagedOutput, atomic_write_bytes, atomic_write_text
@@ -38,9 +48,10 @@ from ..intake.roles import check_columns
 from ..intake.sitetrials import DesignATE, design_ate
 from ..intake.study import Study, StudySpec, load_study, read_table
 from .key import fit_key_units, key_metadata, write_key
-from .layout import (DEFAULT_HOLDOUT_SHARE, PART, PUBLIC_DATA, TASK_SHEET, TEMPLATE_CSV, TEMPLATE_TOML, TOKEN,
+from .layout import (CLUSTER, DEFAULT_HOLDOUT_SHARE, PART, PUBLIC_DATA, TASK_SHEET, TEMPLATE_CSV, TEMPLATE_TOML,
+                     TOKEN,
                      refuse_earlier)
-from .leakaudit import LeakAudit, audit_columns, audit_public, require_no_leaks
+from .leakaudit import LeakAudit, audit_cluster_tokens, audit_columns, audit_public, require_no_leaks
 from .tasksheet import task_sheet, template_csv, template_toml
 
 _TOKEN_ALPHABET = np.array(list("abcdefghjkmnpqrstuvwxyz23456789"))
@@ -114,10 +125,18 @@ def seal_benchmark(
     rng = np.random.default_rng(int(secret, 16))  # the secret, never the seed: see the module docstring
     units = units[rng.permutation(units.size)]
     tokens = _tokens(rng, units.size)
-    graded = _holdout_mask(rng, units.size, holdout_share)
-    public = _public_frame(study, units, tokens, graded, holdout_share > 0)
+    if study.cluster is None:
+        graded = _holdout_mask(rng, units.size, holdout_share)
+        cluster_tokens = None
+    else:
+        codes, _ = cluster_codes(np.asarray(study.cluster, dtype=object)[units])
+        graded = _cluster_holdout_mask(rng, codes, holdout_share)
+        cluster_tokens = _tokens(rng, int(codes.max()) + 1)[codes]
+    public = _public_frame(study, units, tokens, graded, holdout_share > 0, cluster_tokens)
     audit = replace(audit, rows=audit.rows + audit_public(
         public, study.site[units], [TOKEN] + ([PART] if holdout_share > 0 else []), spec.seed))
+    if cluster_tokens is not None:
+        audit = replace(audit, rows=audit.rows + audit_cluster_tokens(cluster_tokens, study.site[units], spec.seed))
     require_no_leaks(audit)
     public_bytes = public.to_csv(index=False, lineterminator="\n").encode("utf-8")
     sha = hashlib.sha256(public_bytes).hexdigest()
@@ -167,7 +186,7 @@ def _check_bench_dir(out: Path, force: bool) -> None:
 
 def _audit(frame: pd.DataFrame, spec: StudySpec, accept_row_order: bool) -> LeakAudit:
     """Leak audit of every column the public file could hold: covariates (declared or all others) and cost."""
-    roles = {spec.outcome, spec.treatment, spec.site, spec.id, spec.stratum, spec.cost} - {None}
+    roles = {spec.outcome, spec.treatment, spec.site, spec.id, spec.stratum, spec.cost, spec.cluster} - {None}
     drop = list(spec.drop_columns) + list(spec.site_derived)
     if spec.covariates is not None:
         columns = list(dict.fromkeys(spec.covariates))
@@ -180,7 +199,7 @@ def _audit(frame: pd.DataFrame, spec: StudySpec, accept_row_order: bool) -> Leak
     if missing:
         raise SiteproofError(f"column {missing[0]!r} is not in the data", f"name one of: {', '.join(frame.columns)}")
     return audit_columns(frame, spec.site, columns, keep=spec.keep_columns, drop=drop, seed=spec.seed,
-                         accept_row_order=accept_row_order)
+                         accept_row_order=accept_row_order, cluster=spec.cluster)
 
 
 def _benchmark_units(study: Study) -> tuple[np.ndarray, DesignATE, list[str]]:
@@ -232,16 +251,39 @@ def _holdout_mask(rng: np.random.Generator, n: int, share: float) -> np.ndarray:
     return graded
 
 
+def _cluster_holdout_mask(rng: np.random.Generator, codes: np.ndarray, share: float) -> np.ndarray:
+    """True for graded units, held out by whole clusters: clusters in a random order until round(share·n) units.
+
+    ``codes`` are cluster codes 0..G−1 of the (shuffled) units. With share 0 every unit is graded.
+    """
+    n = codes.size
+    if share == 0:
+        return np.ones(n, dtype=bool)
+    target = int(round(share * n))
+    sizes = np.bincount(codes)
+    order = rng.permutation(sizes.size)
+    reached = np.cumsum(sizes[order])
+    take = order[: int(np.searchsorted(reached, target)) + 1]
+    graded = np.isin(codes, take)
+    if graded.sum() < _MIN_GRADED or graded.all():
+        raise SiteproofError(f"a holdout share of {share} over {sizes.size} clusters grades {int(graded.sum())} "
+                             f"of {n} units", f"choose a share that holds out at least {_MIN_GRADED} units and "
+                             "leaves at least one cluster published")
+    return graded
+
+
 def _public_frame(
     study: Study, units: np.ndarray, tokens: np.ndarray, graded: np.ndarray, holdout: bool,
+    cluster_tokens: np.ndarray | None = None,
 ) -> pd.DataFrame:
-    """token, [part], outcome, treatment (0/1), covariates as in the data, cost — no site, stratum or id."""
+    """token, [part], [cluster], outcome, treatment (0/1), covariates as in the data, cost — no site, stratum,
+    id or cluster label (the cluster column holds random per-cluster tokens)."""
     blind = study.blind
     names = [blind.outcome, blind.treatment, *blind.covariates] + ([study.spec.cost] if blind.cost is not None else [])
-    clash = [c for c in names if c in (TOKEN, PART)]
+    clash = [c for c in names if c in (TOKEN, PART, CLUSTER)]
     if clash:
         raise SiteproofError(f"column {clash[0]!r} has a name the public file reserves",
-                             f"rename it in the data (the public file uses '{TOKEN}' and '{PART}')")
+                             f"rename it in the data (the public file uses '{TOKEN}', '{PART}' and '{CLUSTER}')")
     y = pd.Series(blind.y[units]).astype("Int64" if blind.binary_outcome else "Float64")
     w = pd.Series(blind.w[units]).astype("Int64")
     if holdout:
@@ -250,6 +292,8 @@ def _public_frame(
     columns: dict[str, Any] = {TOKEN: tokens}
     if holdout:
         columns[PART] = np.where(graded, "test", "train")
+    if cluster_tokens is not None:
+        columns[CLUSTER] = cluster_tokens
     columns[blind.outcome] = y.array  # nullable arrays: integers stay integers next to empty cells
     columns[blind.treatment] = w.array
     frame = pd.DataFrame(columns)
