@@ -455,8 +455,9 @@ def half_sample_batches(n: int, n_boot: int, seed: int, clusters: Any = None) ->
     """Half-sample draws as arrays (b, m): :func:`half_samples` without clusters; with ``clusters`` one
     replicate at a time, the units of ⌊G/2⌋ whole clusters (:func:`siteproof.core.clusters.cluster_half_samples`),
     so m varies with the cluster sizes.  The SD of a mean over G/2 of G equal clusters is the cluster-robust
-    SE (finite-population correction, docs/methods-clusters.md §3)."""
-    if clusters is None:
+    SE (finite-population correction, docs/methods-clusters.md §3).  When every cluster holds one unit the
+    draws are those without clusters, so singleton clusters reproduce the unclustered figures exactly."""
+    if clusters is None or np.unique(np.asarray(clusters)).size == n:
         yield from half_samples(n, n_boot, seed)
         return
     for units in cluster_half_samples(clusters, n_boot, seed):

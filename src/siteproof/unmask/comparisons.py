@@ -95,11 +95,13 @@ def _blp_comparison(u: _Units, tau: np.ndarray, margin: float, alpha: float
 
 
 def _rank_comparison(tau: np.ndarray, blind: np.ndarray, design: np.ndarray, kind: str, n_boot: int, seed: int,
-                     margin: float, alpha: float) -> tuple[Comparison, float, dict[str, Any]]:
+                     margin: float, alpha: float, clusters: np.ndarray | None = None,
+                     ) -> tuple[Comparison, float, dict[str, Any]]:
     """AUTOC / Qini of the τ̂ ranking with blind and design scores on the same half-samples (column 0 blind,
-    column 1 design); D's SE is the SD of the paired replicate differences.  Returns the comparison, the
-    design value's own SE and the design TOC curve (q grid, TOC(q), pointwise SE) for the report."""
-    res = rank_metric(tau, np.column_stack([blind, design]), kind=kind, n_boot=n_boot, seed=seed)
+    column 1 design; half-samples of whole clusters when ``clusters`` is given); D's SE is the SD of the
+    paired replicate differences.  Returns the comparison, the design value's own SE and the design TOC curve
+    (q grid, TOC(q), pointwise SE) for the report."""
+    res = rank_metric(tau, np.column_stack([blind, design]), kind=kind, n_boot=n_boot, seed=seed, clusters=clusters)
     comp = compare(float(res.estimate[0]), float(res.estimate[1]), res.difference(0, 1).se, margin, alpha)
     curve = {"q": res.q.tolist(), "design": {"toc": res.toc[:, 1].tolist(), "se": res.toc_se[:, 1].tolist()}}
     return comp, float(res.se[1]), curve
@@ -133,9 +135,10 @@ def _cate_comparison(
     high_low, groups, top_bottom = _gates_comparisons(tau, blind, design, k, key, plan, u.clusters)
     fit_b, fit_d, beta2 = _blp_comparison(u, tau, plan.margin(cate_claim(key, "beta2")), plan.alpha)
     autoc, autoc_design_se, toc_curve = _rank_comparison(tau, blind, design, "autoc", n_boot, seed,
-                                                         plan.margin(cate_claim(key, "autoc")), plan.alpha)
+                                                         plan.margin(cate_claim(key, "autoc")), plan.alpha,
+                                                         u.clusters)
     qini, _, _ = _rank_comparison(tau, blind, design, "qini", n_boot, seed, plan.margin(cate_claim(key, "qini")),
-                                  plan.alpha)
+                                  plan.alpha, u.clusters)
     costs = None
     if u.cost is not None:
         design_costs = cost_curve(tau, design, u.cost)

@@ -179,10 +179,11 @@ def hold_out_site(task: _Task, n_boot: int, seed: int) -> SiteTransport:
         if key == "constant":
             continue
         tau = fit.predict(task.X)
-        moved = rank_metric(tau, gamma, kind="autoc", n_boot=n_boot, seed=seed)
+        moved = rank_metric(tau, gamma, kind="autoc", n_boot=n_boot, seed=seed, clusters=task.clusters)
         autoc[key] = moved.estimate_of(0)
         if key in task.tau_full:
-            here = rank_metric(task.tau_full[key], gamma, kind="autoc", n_boot=n_boot, seed=seed)
+            here = rank_metric(task.tau_full[key], gamma, kind="autoc", n_boot=n_boot, seed=seed,
+                               clusters=task.clusters)
             in_sample[key] = here.estimate_of(0)
             d = moved.boot[:, 0] - here.boot[:, 0]
             loss[key] = Estimate.from_value(
