@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
+import pytest
 from sklearn.neighbors import KNeighborsClassifier
 
 from conftest import fast_config, small_trial
@@ -93,3 +94,26 @@ def test_run_blind_with_and_without_clusters():
     assert all(np.unique(folds[codes == c]).size == 1 for c in range(80))
     assert clustered.record["data"]["clustered"] is True and clustered.record["data"]["n_clusters"] == 80
     assert clustered.record["cate"][1]["blp"]["covariance"] == "cluster"
+
+
+def test_rule_value_by_group_takes_cluster_robust_ses_within_each_group():
+    """Per group, the value SE is the cluster-sum SE of that group's value scores (Liang & Zeger 1986),
+    written out here; without clusters it is sd/√n."""
+    from siteproof.blind.rules import rule_value_by_group
+    from siteproof.core.clusters import cluster_mean_se
+
+    rng = np.random.default_rng(7)
+    n = 240
+    group = np.repeat(["a", "b"], n // 2)
+    cluster = np.repeat(np.arange(24), 10)
+    shared = rng.normal(size=24)[cluster]
+    g0, g1 = shared + rng.normal(size=n), shared + 1 + rng.normal(size=n)
+    pi = (rng.random(n) < 0.5).astype(float)
+    plain = rule_value_by_group(pi, g0, g1, group)
+    clustered = rule_value_by_group(pi, g0, g1, group, clusters=cluster)
+    for label in ("a", "b"):
+        sel = group == label
+        psi = pi[sel] * g1[sel] + (1 - pi[sel]) * g0[sel]
+        assert plain[label].value.se == pytest.approx(psi.std(ddof=1) / np.sqrt(sel.sum()), rel=1e-10)
+        assert clustered[label].value.se == pytest.approx(cluster_mean_se(psi, cluster[sel]), rel=1e-10)
+        assert clustered[label].value.estimate == pytest.approx(plain[label].value.estimate, rel=1e-12)

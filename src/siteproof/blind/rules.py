@@ -146,10 +146,12 @@ def rule_value(pi: Any, gamma0: Any, gamma1: Any, cost: Any = None, clusters: An
     )
 
 
-def rule_value_by_group(pi: Any, gamma0: Any, gamma1: Any, groups: Any, cost: Any = None) -> dict[str, RuleValue]:
+def rule_value_by_group(pi: Any, gamma0: Any, gamma1: Any, groups: Any, cost: Any = None,
+                        clusters: Any = None) -> dict[str, RuleValue]:
     """:func:`rule_value` within each group (e.g. site), keyed by ``str(label)`` in sorted label order.
 
-    Within a group the gain compares the rule with random allocation at that group's own treated share.
+    Within a group the gain compares the rule with random allocation at that group's own treated share; with
+    ``clusters`` (one label per unit, nested in the groups) each group's SEs are cluster-robust.
     """
     g0, g1 = _arm_pair(gamma0, gamma1)
     n = g0.size
@@ -159,7 +161,9 @@ def rule_value_by_group(pi: Any, gamma0: Any, gamma1: Any, groups: Any, cost: An
     if labels.shape != (n,):
         raise SiteproofError(f"groups has shape {labels.shape} but {n} units were given", "pass one label per unit")
     uniques, codes = np.unique(labels, return_inverse=True)
-    return {str(label): rule_value(p[codes == g], g0[codes == g], g1[codes == g], c[codes == g])
+    members = None if clusters is None else np.asarray(clusters, dtype=object)
+    return {str(label): rule_value(p[codes == g], g0[codes == g], g1[codes == g], c[codes == g],
+                                   clusters=None if members is None else members[codes == g])
             for g, label in enumerate(uniques)}
 
 

@@ -141,7 +141,7 @@ def _cate_comparison(
                                   plan.alpha, u.clusters)
     costs = None
     if u.cost is not None:
-        design_costs = cost_curve(tau, design, u.cost)
+        design_costs = cost_curve(tau, design, u.cost, clusters=u.clusters)
         costs = {"x": design_costs.x.tolist(), "design": {"gain": design_costs.gain.tolist(), "se": design_costs.se.tolist()}}
     loss_b = r_loss_units(u.y, u.w, u.e_hat, u.m_hat, tau) - r_loss_units(u.y, u.w, u.e_hat, u.m_hat, tau_const)
     loss_d = r_loss_units(u.y, u.w, u.rate, u.m_star(), tau) - r_loss_units(u.y, u.w, u.rate, u.m_star(), tau_const)
@@ -173,8 +173,8 @@ def _rule_by_site(pi: np.ndarray, u: _Units, blind_gain: float) -> pd.DataFrame:
     ``sign_agrees`` compares the sign of the site's oracle-AIPW gain with the blind (pooled) gain; it is
     empty where the rule treats all or none of the site (gain 0 by construction).
     """
-    oracle = rule_value_by_group(pi, *u.oracle_arms(), u.site, u.cost)
-    ipw = rule_value_by_group(pi, *u.ipw_arms(), u.site, u.cost)
+    oracle = rule_value_by_group(pi, *u.oracle_arms(), u.site, u.cost, u.clusters)
+    ipw = rule_value_by_group(pi, *u.ipw_arms(), u.site, u.cost, u.clusters)
     rows = []
     for site, val in oracle.items():
         contrast = 0.0 < val.treated_share < 1.0
