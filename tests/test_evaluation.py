@@ -20,9 +20,9 @@ from threadpoolctl import threadpool_limits  # installed with scikit-learn
 from conftest import cross_fit_linear
 from siteproof.blind.effects import fit_cate
 from siteproof.core.errors import SiteproofError
+from siteproof.blind.costcurve import cost_curve
 from siteproof.blind.evaluation import (
     blp,
-    cost_curve,
     gates,
     quantile_groups,
     r_loss_comparison,

@@ -39,7 +39,8 @@ from .binning import fold_bins
 from .bootstrap import shared_rank_metrics
 from .effects import CATE_KEYS, CateFit, fit_cate
 from ..core.errors import SiteproofError
-from .evaluation import RankResult, blp, cost_curve, gates, r_loss_comparison
+from .costcurve import cost_curve
+from .evaluation import RankResult, blp, gates, r_loss_comparison
 from .nuisance import Nuisances, cross_fit_nuisances, make_folds
 from .rules import TreeRule, budget_rule, cross_fitted_tree, rule_value, threshold_rule
 from ..core.scores import arm_scores

@@ -18,7 +18,8 @@ import pandas as pd
 from scipy import stats
 
 from ..blind.claims import rule_column, tau_column
-from ..blind.evaluation import BlpResult, blp, cost_curve, gates, r_loss_units, rank_metric
+from ..blind.costcurve import cost_curve
+from ..blind.evaluation import BlpResult, blp, gates, r_loss_units, rank_metric
 from ..blind.plan import cate_claim, rule_claim
 from ..blind.rules import rule_value, rule_value_by_group
 from ..core.estimates import Estimate
