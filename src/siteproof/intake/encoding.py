@@ -18,6 +18,7 @@ import pandas as pd
 from .sitetrials import natural_key
 from .spec import StudySpec
 from .values import as_float, days_since_earliest, examples, is_datetime, is_numeric, parses_as_number, text_labels
+from ..core.clusters import cluster_codes
 from ..core.errors import SiteproofError
 
 ID_UNIQUE_SHARE = 0.9
@@ -160,7 +161,7 @@ def screen_covariates(
     kept: dict[str, tuple[np.ndarray, bool]] = {}
     notes: list[str] = []
     cluster_level: list[str] = []
-    per_cluster = None if clusters is None else np.unique(pd.factorize(clusters)[0], return_index=True)[1]
+    per_cluster = None if clusters is None else np.unique(cluster_codes(clusters)[0], return_index=True)[1]
     outcome = as_float(frame[spec.outcome])
     y = (outcome, pd.unique(outcome).size)
     arms = text_labels(frame[spec.treatment])
